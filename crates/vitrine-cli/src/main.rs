@@ -1,0 +1,44 @@
+//! The `vitrine` command line: parses arguments, calls the engine, prints.
+
+mod commands;
+mod output;
+mod progress;
+mod settings;
+
+use std::io;
+use std::process::ExitCode;
+
+use clap::Parser;
+
+use crate::commands::Cli;
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    // The thread count must be set before anything touches the rayon pool;
+    // candle's matrix multiplications read it too.
+    if let Some(jobs) = cli.global.jobs {
+        std::env::set_var("RAYON_NUM_THREADS", jobs.max(1).to_string());
+    }
+    tracing_subscriber::fmt()
+        .with_env_filter(
+            tracing_subscriber::EnvFilter::try_from_env("VITRINE_LOG")
+                .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("warn")),
+        )
+        .with_writer(io::stderr)
+        .init();
+    match commands::run(cli) {
+        Ok(code) => code,
+        Err(err) => {
+            // Output piped into `head` closes early: not an error.
+            if err
+                .chain()
+                .filter_map(|cause| cause.downcast_ref::<io::Error>())
+                .any(|e| e.kind() == io::ErrorKind::BrokenPipe)
+            {
+                return ExitCode::SUCCESS;
+            }
+            eprintln!("error: {err:#}");
+            ExitCode::from(2)
+        }
+    }
+}

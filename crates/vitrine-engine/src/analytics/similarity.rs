@@ -1,0 +1,111 @@
+//! Dense dot products between many vectors and a few centres, via a blocked matrix multiply.
+
+use rayon::prelude::*;
+
+/// Rows per matrix-multiply block: bounds each worker's score buffer to
+/// `ROWS_PER_BLOCK * n_centres` floats while keeping blocks large enough for the kernel.
+const ROWS_PER_BLOCK: usize = 1024;
+
+pub(crate) fn dot(left: &[f32], right: &[f32]) -> f32 {
+    left.iter().zip(right).map(|(a, b)| a * b).sum()
+}
+
+pub(crate) fn squared_distance(left: &[f32], right: &[f32]) -> f32 {
+    left.iter()
+        .zip(right)
+        .map(|(a, b)| {
+            let difference = a - b;
+            difference * difference
+        })
+        .sum()
+}
+
+/// Splits `vectors` into blocks of rows and calls `per_block(first_row, scores)` on each, where
+/// `scores` is `n_rows x n_centres` row-major with `scores[r * n_centres + j] =
+/// row_(first_row + r) · centre_j`; returns the results in block order. Blocks run in
+/// parallel; each block is one single-threaded matrix multiply, so results do not depend on
+/// the thread count.
+///
+/// Callers guarantee at least one centre and that `vectors.len()` and `centres.len()` are
+/// multiples of `dim > 0`.
+pub(crate) fn map_blocks_with_scores<T, F>(
+    vectors: &[f32],
+    centres: &[f32],
+    dim: usize,
+    per_block: F,
+) -> Vec<T>
+where
+    T: Send,
+    F: Fn(usize, &[f32]) -> T + Sync,
+{
+    assert!(
+        dim > 0
+            && !centres.is_empty()
+            && vectors.len() / dim * dim == vectors.len()
+            && centres.len() / dim * dim == centres.len()
+    );
+    let n_centres = centres.len() / dim;
+    vectors
+        .par_chunks(ROWS_PER_BLOCK * dim)
+        .enumerate()
+        .map(|(block_index, block)| {
+            let n_rows = block.len() / dim;
+            let mut scores = vec![0f32; n_rows * n_centres];
+            {
+                // SAFETY: `block` is n_rows x dim row-major, `centres` is n_centres x dim
+                // row-major (read as its transpose, dim x n_centres, via the strides) and
+                // `scores` is n_rows x n_centres row-major; every index the kernel touches is
+                // inside those three buffers.
+                unsafe {
+                    gemm::gemm(
+                        n_rows,
+                        n_centres,
+                        dim,
+                        scores.as_mut_ptr(),
+                        1,
+                        n_centres as isize,
+                        false,
+                        block.as_ptr(),
+                        1,
+                        dim as isize,
+                        centres.as_ptr(),
+                        dim as isize,
+                        1,
+                        0.0,
+                        1.0,
+                        false,
+                        false,
+                        false,
+                        gemm::Parallelism::None,
+                    );
+                }
+            }
+            per_block(block_index * ROWS_PER_BLOCK, &scores)
+        })
+        .collect()
+}
+
+/// Like [`map_blocks_with_scores`], one result per row: `per_row(row, scores)` with
+/// `scores[j] = row · centre_j`.
+pub(crate) fn map_rows_with_scores<T, F>(
+    vectors: &[f32],
+    centres: &[f32],
+    dim: usize,
+    per_row: F,
+) -> Vec<T>
+where
+    T: Send,
+    F: Fn(usize, &[f32]) -> T + Sync,
+{
+    let n_centres = centres.len() / dim;
+    map_blocks_with_scores(vectors, centres, dim, |first_row, scores| {
+        scores
+            .chunks_exact(n_centres)
+            .enumerate()
+            .map(|(row, row_scores)| per_row(first_row + row, row_scores))
+            .collect::<Vec<T>>()
+    })
+    .into_iter()
+    .flatten()
+    .collect()
+}

@@ -1,0 +1,111 @@
+//! An in-memory view of a collection's records and embeddings, taken once per
+//! query (or kept by the service and refreshed after writes).
+
+use std::collections::HashMap;
+use std::path::PathBuf;
+
+use serde::Serialize;
+use vitrine_store::{ImageId, ImageRecord, Store};
+
+use crate::error::EngineError;
+
+/// How results name an image: its id and where it lives.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct ImageRef {
+    pub id: ImageId,
+    /// Relative to its root, `/`-separated.
+    pub path: String,
+    /// The root folder the path is relative to.
+    pub root: String,
+    pub split: Option<String>,
+    pub label: Option<String>,
+}
+
+/// Records and embeddings of every image, with row `i` of `embeddings`
+/// belonging to `ids[i]`.
+pub struct Catalog {
+    pub ids: Vec<ImageId>,
+    pub records: Vec<ImageRecord>,
+    /// Row-major `ids.len() × dim`, L2-normalised.
+    pub embeddings: Vec<f32>,
+    pub dim: usize,
+    row_of: HashMap<ImageId, usize>,
+    roots: HashMap<u32, PathBuf>,
+}
+
+impl Catalog {
+    pub fn load(store: &Store) -> Result<Self, EngineError> {
+        let (ids, embeddings) = store.all_embeddings()?;
+        let dim = store.fingerprint().dim;
+        let mut records = Vec::with_capacity(ids.len());
+        for &id in &ids {
+            let record = store
+                .record(id)?
+                .ok_or(EngineError::UnknownImage(id))?;
+            records.push(record);
+        }
+        let row_of = ids.iter().enumerate().map(|(row, &id)| (id, row)).collect();
+        Ok(Self {
+            ids,
+            records,
+            embeddings,
+            dim,
+            row_of,
+            roots: store.roots().into_iter().collect(),
+        })
+    }
+
+    pub fn len(&self) -> usize {
+        self.ids.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.ids.is_empty()
+    }
+
+    pub fn row(&self, id: ImageId) -> Option<usize> {
+        self.row_of.get(&id).copied()
+    }
+
+    pub fn embedding_at(&self, row: usize) -> &[f32] {
+        &self.embeddings[row * self.dim..(row + 1) * self.dim]
+    }
+
+    pub fn record(&self, id: ImageId) -> Option<&ImageRecord> {
+        self.row(id).map(|row| &self.records[row])
+    }
+
+    pub fn root_path(&self, root: u32) -> Option<&PathBuf> {
+        self.roots.get(&root)
+    }
+
+    /// The absolute path of an indexed image.
+    pub fn absolute_path(&self, id: ImageId) -> Option<PathBuf> {
+        let record = self.record(id)?;
+        Some(self.roots.get(&record.root)?.join(&record.rel_path))
+    }
+
+    pub fn image_ref(&self, row: usize) -> ImageRef {
+        let record = &self.records[row];
+        ImageRef {
+            id: self.ids[row],
+            path: record.rel_path.clone(),
+            root: self
+                .roots
+                .get(&record.root)
+                .map(|p| p.display().to_string())
+                .unwrap_or_default(),
+            split: record.split.clone(),
+            label: record.label.clone(),
+        }
+    }
+
+    /// Cosine similarity of two rows (embeddings are unit vectors).
+    pub fn similarity(&self, a: usize, b: usize) -> f32 {
+        dot(self.embedding_at(a), self.embedding_at(b))
+    }
+}
+
+pub fn dot(a: &[f32], b: &[f32]) -> f32 {
+    a.iter().zip(b).map(|(x, y)| x * y).sum()
+}

@@ -1,0 +1,375 @@
+//! Incremental indexing: walk roots, embed what is new or changed, drop what
+//! vanished, record what failed — committing in small atomic steps so that a
+//! kill at any moment leaves a store that opens and a run that resumes.
+
+use std::collections::{HashMap, HashSet};
+use std::path::{Path, PathBuf};
+use std::time::{Instant, SystemTime, UNIX_EPOCH};
+
+use rayon::prelude::*;
+use vitrine_imaging::{decode_bytes, preprocess, DecodeOptions, PreparedImage};
+use vitrine_model::config::ModelSpec;
+use vitrine_model::encoder::Encoder;
+use vitrine_store::{
+    ChangeSet, FileError, ImageId, ImageRecord, ModelFingerprint, Store, Upsert,
+};
+
+use crate::error::EngineError;
+use crate::splits::SplitRule;
+use crate::walk::{walk_root, FoundFile, WalkOptions};
+
+/// The fingerprint that ties a store to the model that filled it.
+pub fn fingerprint_of(encoder: &Encoder) -> ModelFingerprint {
+    let spec: &ModelSpec = encoder.spec();
+    ModelFingerprint {
+        model_id: spec.id.clone(),
+        weights_sha256: spec.weights_sha256.clone(),
+        preprocess: serde_json::to_string(&spec.preprocess).unwrap_or_default(),
+        pooling: serde_json::to_value(spec.pooling)
+            .ok()
+            .and_then(|v| v.as_str().map(str::to_owned))
+            .unwrap_or_default(),
+        dim: encoder.embedding_dim(),
+    }
+}
+
+/// What an index run should do.
+#[derive(Clone, Debug)]
+pub struct IndexOptions {
+    pub walk: WalkOptions,
+    pub split_rule: SplitRule,
+    pub decode: DecodeOptions,
+    /// Images per forward pass.
+    pub batch_size: usize,
+    /// Images decoded, embedded and committed together; a kill loses at most
+    /// this much work.
+    pub commit_every: usize,
+}
+
+impl Default for IndexOptions {
+    fn default() -> Self {
+        Self {
+            walk: WalkOptions::default(),
+            split_rule: SplitRule::default(),
+            decode: DecodeOptions::default(),
+            batch_size: 16,
+            commit_every: 64,
+        }
+    }
+}
+
+/// Counts of one index run, over all roots.
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct IndexReport {
+    pub new: usize,
+    pub changed: usize,
+    pub unchanged: usize,
+    pub removed: usize,
+    pub failed: usize,
+    /// Images whose bytes matched an already embedded image, so no forward
+    /// pass was needed.
+    pub reused_embeddings: usize,
+}
+
+impl std::fmt::Display for IndexReport {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(
+            f,
+            "{} new, {} changed, {} unchanged, {} removed, {} failed",
+            self.new, self.changed, self.unchanged, self.removed, self.failed
+        )
+    }
+}
+
+/// Receives progress; the command line draws a bar or logs lines.
+pub trait IndexProgress: Sync {
+    fn begin(&self, files_to_process: u64);
+    fn advance(&self, files_done: u64);
+    fn finish(&self);
+}
+
+/// A progress sink that reports nothing.
+pub struct NoProgress;
+
+impl IndexProgress for NoProgress {
+    fn begin(&self, _: u64) {}
+    fn advance(&self, _: u64) {}
+    fn finish(&self) {}
+}
+
+/// A file to (re-)embed.
+struct Pending {
+    file: FoundFile,
+    replaces: Option<ImageId>,
+}
+
+/// A file after decoding, ready for the forward pass (or already embedded).
+struct Decoded {
+    pending_index: usize,
+    record: ImageRecord,
+    prepared: Option<PreparedImage>,
+    known_embedding: Option<Vec<f32>>,
+}
+
+fn now_unix_s() -> i64 {
+    SystemTime::now()
+        .duration_since(UNIX_EPOCH)
+        .map_or(0, |d| d.as_secs() as i64)
+}
+
+/// Indexes every root into `store` with `encoder`.
+pub fn index_roots(
+    store: &mut Store,
+    encoder: &Encoder,
+    roots: &[PathBuf],
+    options: &IndexOptions,
+    progress: &dyn IndexProgress,
+) -> Result<IndexReport, EngineError> {
+    let expected = fingerprint_of(encoder);
+    if store.fingerprint() != &expected {
+        return Err(EngineError::ModelNotCollectionModel {
+            stored: store.fingerprint().to_string(),
+            loaded: expected.to_string(),
+        });
+    }
+    let mut report = IndexReport::default();
+    let started = Instant::now();
+    for root in roots {
+        index_one_root(store, encoder, root, options, progress, &mut report)?;
+    }
+    store.save_index()?;
+    tracing::info!(elapsed_s = started.elapsed().as_secs_f64(), "{report}");
+    Ok(report)
+}
+
+fn index_one_root(
+    store: &mut Store,
+    encoder: &Encoder,
+    root: &Path,
+    options: &IndexOptions,
+    progress: &dyn IndexProgress,
+    report: &mut IndexReport,
+) -> Result<(), EngineError> {
+    let root = root
+        .canonicalize()
+        .map_err(|source| EngineError::UnreadableRoot {
+            root: root.to_path_buf(),
+            message: source.to_string(),
+        })?;
+    let root_id = store.add_root(&root)?;
+    let walked = walk_root(&root, &options.walk)?;
+
+    let mut existing: HashMap<String, (ImageId, ImageRecord)> = HashMap::new();
+    for entry in store.records() {
+        let (id, record) = entry?;
+        if record.root == root_id {
+            existing.insert(record.rel_path.clone(), (id, record));
+        }
+    }
+    let previous_errors: HashSet<String> = store
+        .errors()?
+        .into_iter()
+        .filter(|e| e.root == root_id)
+        .map(|e| e.rel_path)
+        .collect();
+
+    let mut pending = Vec::new();
+    let mut seen: HashSet<&str> = HashSet::new();
+    for file in &walked.files {
+        seen.insert(&file.rel_path);
+        let assigned = options.split_rule.assign(&file.rel_path);
+        match existing.get(&file.rel_path) {
+            Some((_, record))
+                if record.byte_size == file.byte_size
+                    && record.modified_unix_ns == file.modified_unix_ns
+                    && record.split == assigned.split
+                    && record.label == assigned.label =>
+            {
+                report.unchanged += 1;
+            }
+            Some((id, _)) => pending.push(Pending {
+                file: file.clone(),
+                replaces: Some(*id),
+            }),
+            None => pending.push(Pending {
+                file: file.clone(),
+                replaces: None,
+            }),
+        }
+    }
+
+    // Walk problems are per-file errors too: record them, keep going.
+    let walk_errors: Vec<FileError> = walked
+        .problems
+        .iter()
+        .map(|p| FileError {
+            root: root_id,
+            rel_path: p.rel_path.clone(),
+            reason: p.reason.clone(),
+            at_unix_s: now_unix_s(),
+        })
+        .collect();
+    report.failed += walk_errors.len();
+    let problem_paths: HashSet<&str> = walked.problems.iter().map(|p| p.rel_path.as_str()).collect();
+
+    if !walk_errors.is_empty() {
+        store.commit(ChangeSet {
+            errors: walk_errors,
+            ..ChangeSet::default()
+        })?;
+    }
+
+    progress.begin(pending.len() as u64);
+    for chunk in pending.chunks(options.commit_every.max(1)) {
+        let changes = embed_chunk(store, encoder, root_id, chunk, options, report)?;
+        store.commit(changes)?;
+        progress.advance(chunk.len() as u64);
+    }
+    progress.finish();
+
+    // Removals last, so that a renamed file found above could still reuse
+    // the embedding of its old path's bytes.
+    let removals: Vec<ImageId> = existing
+        .iter()
+        .filter(|(path, _)| !seen.contains(path.as_str()) && !problem_paths.contains(path.as_str()))
+        .map(|(_, (id, _))| *id)
+        .collect();
+    report.removed += removals.len();
+    let vanished_errors: Vec<(u32, String)> = previous_errors
+        .into_iter()
+        .filter(|path| !seen.contains(path.as_str()) && !problem_paths.contains(path.as_str()))
+        .map(|path| (root_id, path))
+        .collect();
+    if !removals.is_empty() || !vanished_errors.is_empty() {
+        store.commit(ChangeSet {
+            removals,
+            cleared_errors: vanished_errors,
+            ..ChangeSet::default()
+        })?;
+    }
+    Ok(())
+}
+
+/// Decodes a chunk in parallel, embeds what needs it in batches, and returns
+/// the changes to commit.
+fn embed_chunk(
+    store: &Store,
+    encoder: &Encoder,
+    root_id: u32,
+    chunk: &[Pending],
+    options: &IndexOptions,
+    report: &mut IndexReport,
+) -> Result<ChangeSet, EngineError> {
+    let spec = &encoder.spec().preprocess;
+    let decode_options = DecodeOptions {
+        target_shorter_side: Some(spec.resize_shorter),
+        ..options.decode.clone()
+    };
+    let outcomes: Vec<Result<Decoded, FileError>> = chunk
+        .par_iter()
+        .enumerate()
+        .map(|(pending_index, pending)| {
+            let fail = |reason: String| FileError {
+                root: root_id,
+                rel_path: pending.file.rel_path.clone(),
+                reason,
+                at_unix_s: now_unix_s(),
+            };
+            let bytes = std::fs::read(&pending.file.abs_path)
+                .map_err(|e| fail(format!("cannot read: {e}")))?;
+            let content_hash = *blake3::hash(&bytes).as_bytes();
+            let decoded = decode_bytes(&bytes, &decode_options).map_err(|e| fail(e.to_string()))?;
+            let mut pixel_hasher = blake3::Hasher::new();
+            pixel_hasher.update(&decoded.rgb.width().to_le_bytes());
+            pixel_hasher.update(&decoded.rgb.height().to_le_bytes());
+            pixel_hasher.update(decoded.rgb.as_raw());
+            let assigned = options.split_rule.assign(&pending.file.rel_path);
+            let record = ImageRecord {
+                root: root_id,
+                rel_path: pending.file.rel_path.clone(),
+                byte_size: bytes.len() as u64,
+                modified_unix_ns: pending.file.modified_unix_ns,
+                content_hash,
+                pixel_hash: *pixel_hasher.finalize().as_bytes(),
+                width: decoded.original_width,
+                height: decoded.original_height,
+                split: assigned.split,
+                label: assigned.label,
+            };
+            let known_embedding = store
+                .embedding_by_content_hash(&content_hash)
+                .map_err(|e| fail(e.to_string()))?;
+            let prepared = match known_embedding {
+                Some(_) => None,
+                None => Some(preprocess(&decoded.rgb, spec).map_err(|e| fail(e.to_string()))?),
+            };
+            Ok(Decoded {
+                pending_index,
+                record,
+                prepared,
+                known_embedding,
+            })
+        })
+        .collect();
+
+    let mut changes = ChangeSet::default();
+    let mut to_embed: Vec<Decoded> = Vec::new();
+    let mut ready: Vec<(Decoded, Vec<f32>)> = Vec::new();
+    // Identical bytes inside one chunk are embedded once as well.
+    let mut first_with_hash: HashMap<[u8; 32], usize> = HashMap::new();
+    let mut copies_of: Vec<(Decoded, usize)> = Vec::new();
+    for outcome in outcomes {
+        match outcome {
+            Err(error) => {
+                report.failed += 1;
+                changes.errors.push(error);
+            }
+            Ok(mut decoded) => match decoded.known_embedding.take() {
+                Some(embedding) => {
+                    report.reused_embeddings += 1;
+                    ready.push((decoded, embedding));
+                }
+                None => match first_with_hash.get(&decoded.record.content_hash) {
+                    Some(&first) => {
+                        report.reused_embeddings += 1;
+                        copies_of.push((decoded, first));
+                    }
+                    None => {
+                        first_with_hash.insert(decoded.record.content_hash, to_embed.len());
+                        to_embed.push(decoded);
+                    }
+                },
+            },
+        }
+    }
+
+    let mut embedded: Vec<Vec<f32>> = Vec::with_capacity(to_embed.len());
+    for batch in to_embed.chunks(options.batch_size.max(1)) {
+        let images: Vec<PreparedImage> = batch
+            .iter()
+            .filter_map(|d| d.prepared.clone())
+            .collect();
+        embedded.extend(encoder.embed(&images)?);
+    }
+    for (decoded, first) in copies_of {
+        ready.push((decoded, embedded[first].clone()));
+    }
+    ready.extend(to_embed.into_iter().zip(embedded));
+
+    for (decoded, embedding) in ready {
+        let pending = &chunk[decoded.pending_index];
+        match pending.replaces {
+            Some(_) => report.changed += 1,
+            None => report.new += 1,
+        }
+        changes
+            .cleared_errors
+            .push((root_id, decoded.record.rel_path.clone()));
+        changes.upserts.push(Upsert {
+            replaces: pending.replaces,
+            record: decoded.record,
+            embedding,
+        });
+    }
+    Ok(changes)
+}

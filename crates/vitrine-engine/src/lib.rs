@@ -1,0 +1,15 @@
+//! The engine: walking folders, incremental ingest, and every query the
+//! users come for (neighbours, duplicates, leakage, clusters, labels).
+//!
+//! Knows nothing of HTTP or command-line parsing.
+
+pub mod analytics;
+pub mod catalog;
+pub mod duplicates;
+pub mod error;
+pub mod ingest;
+pub mod neighbours;
+pub mod splits;
+pub mod walk;
+
+pub use error::EngineError;
