@@ -259,7 +259,8 @@ struct BrokenFile {
 struct GroundTruth {
     schema_version: u32,
     scenario: &'static str,
-    seed: u64,
+    /// Hexadecimal, so that JSON readers with 53-bit numbers see it exactly.
+    seed: String,
     labels: Vec<Label>,
     splits: Vec<Split>,
     image_counts: BTreeMap<Split, BTreeMap<Label, usize>>,
@@ -431,7 +432,7 @@ pub fn build() -> Result<Collection> {
     let ground_truth = GroundTruth {
         schema_version: 1,
         scenario: "Kiln & Knot product photos (invented)",
-        seed: SEED,
+        seed: format!("{SEED:#018x}"),
         labels: Label::ALL.to_vec(),
         splits: Split::ALL.to_vec(),
         image_counts,
