@@ -12,6 +12,10 @@ use vitrine_engine::catalog::Catalog;
 use vitrine_engine::duplicates::{
     find_duplicate_groups, find_leaks, DuplicateGroup, DuplicateOptions, LeakOptions, LeakReport,
 };
+use vitrine_engine::clusters::{cluster_collection, ClusterOptions, ClusterReport};
+use vitrine_engine::labels::{
+    find_label_suspects, suggest_labels, LabelOptions, LabelSuggestion, LabelSuspect,
+};
 use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions};
 use vitrine_engine::neighbours::{nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter};
 use vitrine_engine::splits::SplitRule;
@@ -96,6 +100,61 @@ pub enum Command {
         #[command(flatten)]
         output: OutputArgs,
     },
+    /// Group the collection into clusters and summarise each.
+    Clusters {
+        /// Number of clusters (default: about sqrt(n/2), at most 300).
+        #[arg(short, long)]
+        k: Option<usize>,
+        /// Seed of the k-means++ initialisation.
+        #[arg(long, default_value_t = 7)]
+        seed: u64,
+        #[command(flatten)]
+        output: OutputArgs,
+    },
+    /// Label suggestions and likely mislabels.
+    #[command(subcommand)]
+    Labels(LabelCommand),
+}
+
+#[derive(Subcommand, Debug)]
+pub enum LabelCommand {
+    /// Suggest labels for unlabelled images from their labelled neighbours.
+    Suggest {
+        #[command(flatten)]
+        vote: VoteArgs,
+        #[command(flatten)]
+        output: OutputArgs,
+    },
+    /// Labelled images whose neighbours disagree with their label.
+    Suspects {
+        #[command(flatten)]
+        vote: VoteArgs,
+        /// Minimum share of the vote against the image's own label.
+        #[arg(long, default_value_t = 0.7)]
+        min_disagreement: f32,
+        #[command(flatten)]
+        output: OutputArgs,
+    },
+}
+
+#[derive(Args, Debug)]
+pub struct VoteArgs {
+    /// Labelled neighbours that vote.
+    #[arg(short, long, default_value_t = 10)]
+    k: usize,
+    /// Abstain when the leading label has a smaller share of the vote.
+    #[arg(long, default_value_t = 0.6)]
+    min_confidence: f32,
+}
+
+impl VoteArgs {
+    fn options(&self, min_disagreement: f32) -> LabelOptions {
+        LabelOptions {
+            k: self.k,
+            min_confidence: self.min_confidence,
+            min_disagreement,
+        }
+    }
 }
 
 #[derive(Subcommand, Debug)]
@@ -253,6 +312,28 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
                 duplicates: ctx.duplicate_options(&threshold)?,
             };
             emit(&LeakTable(find_leaks(&store, &catalog, &options)?), &output)?;
+        }
+        Command::Clusters { k, seed, output } => {
+            let store = ctx.open_store()?;
+            let catalog = Catalog::load(&store)?;
+            let options = ClusterOptions { n_clusters: k, seed };
+            emit(&ClusterTable(cluster_collection(&catalog, &options)?), &output)?;
+        }
+        Command::Labels(LabelCommand::Suggest { vote, output }) => {
+            let store = ctx.open_store()?;
+            let catalog = Catalog::load(&store)?;
+            let options = vote.options(LabelOptions::default().min_disagreement);
+            emit(&SuggestionTable(suggest_labels(&store, &catalog, &options)?), &output)?;
+        }
+        Command::Labels(LabelCommand::Suspects {
+            vote,
+            min_disagreement,
+            output,
+        }) => {
+            let store = ctx.open_store()?;
+            let catalog = Catalog::load(&store)?;
+            let options = vote.options(min_disagreement);
+            emit(&SuspectTable(find_label_suspects(&store, &catalog, &options)?), &output)?;
         }
     }
     Ok(ExitCode::SUCCESS)
@@ -612,5 +693,107 @@ impl Report for LeakTable {
             .collect();
         lines.push(String::new());
         lines
+    }
+}
+
+struct ClusterTable(ClusterReport);
+
+impl Report for ClusterTable {
+    type Item = vitrine_engine::clusters::ClusterSummary;
+    fn document(&self) -> serde_json::Value {
+        serde_json::to_value(&self.0).unwrap_or_default()
+    }
+    fn items(&self) -> Vec<&Self::Item> {
+        self.0.clusters.iter().collect()
+    }
+    fn columns(&self) -> Vec<&'static str> {
+        vec!["cluster", "size", "cohesion", "top labels", "splits", "medoid"]
+    }
+    fn rows(&self) -> Vec<Vec<String>> {
+        self.0
+            .clusters
+            .iter()
+            .map(|c| {
+                let labels: Vec<String> = c
+                    .top_labels
+                    .iter()
+                    .take(3)
+                    .map(|l| format!("{} {:.0}%", l.label, 100.0 * l.share))
+                    .collect();
+                let splits: Vec<String> =
+                    c.split_mix.iter().map(|s| format!("{} {}", s.split, s.count)).collect();
+                vec![
+                    c.index.to_string(),
+                    c.size.to_string(),
+                    score(c.cohesion),
+                    labels.join(", "),
+                    splits.join(", "),
+                    c.medoid.path.clone(),
+                ]
+            })
+            .collect()
+    }
+    fn preamble(&self) -> Vec<String> {
+        vec![
+            format!("{} clusters (spherical k-means, seed {})", self.0.n_clusters, self.0.seed),
+            String::new(),
+        ]
+    }
+}
+
+struct SuggestionTable(Vec<LabelSuggestion>);
+
+impl Report for SuggestionTable {
+    type Item = LabelSuggestion;
+    fn document(&self) -> serde_json::Value {
+        serde_json::to_value(&self.0).unwrap_or_default()
+    }
+    fn items(&self) -> Vec<&LabelSuggestion> {
+        self.0.iter().collect()
+    }
+    fn columns(&self) -> Vec<&'static str> {
+        vec!["path", "suggested", "confidence", "leading"]
+    }
+    fn rows(&self) -> Vec<Vec<String>> {
+        self.0
+            .iter()
+            .map(|s| {
+                vec![
+                    s.image.path.clone(),
+                    s.suggested_label.clone().unwrap_or_else(|| "(abstain)".into()),
+                    score(s.confidence),
+                    opt(&s.leading_label),
+                ]
+            })
+            .collect()
+    }
+}
+
+struct SuspectTable(Vec<LabelSuspect>);
+
+impl Report for SuspectTable {
+    type Item = LabelSuspect;
+    fn document(&self) -> serde_json::Value {
+        serde_json::to_value(&self.0).unwrap_or_default()
+    }
+    fn items(&self) -> Vec<&LabelSuspect> {
+        self.0.iter().collect()
+    }
+    fn columns(&self) -> Vec<&'static str> {
+        vec!["path", "label", "disagreement", "neighbours say", "confidence"]
+    }
+    fn rows(&self) -> Vec<Vec<String>> {
+        self.0
+            .iter()
+            .map(|s| {
+                vec![
+                    s.image.path.clone(),
+                    opt(&s.image.label),
+                    score(s.disagreement),
+                    opt(&s.suggested_label),
+                    score(s.confidence),
+                ]
+            })
+            .collect()
     }
 }

@@ -5,9 +5,11 @@
 
 pub mod analytics;
 pub mod catalog;
+pub mod clusters;
 pub mod duplicates;
 pub mod error;
 pub mod ingest;
+pub mod labels;
 pub mod neighbours;
 pub mod splits;
 pub mod walk;

@@ -9,9 +9,9 @@ use std::collections::BTreeMap;
 use anyhow::{ensure, Result};
 use serde::Deserialize;
 use vitrine_engine::analytics::{
-    automatic_n_clusters, group_by_similarity, kmeans, label_disagreement, summarise_clusters,
-    vote_label, AnalyticsError, KMeansOptions, KMeansResult, SimilarityEdge, VotingNeighbour,
-    AUTOMATIC_N_CLUSTERS_CAP,
+    automatic_n_clusters, group_by_similarity, kmeans, label_disagreement, summarise_cluster,
+    summarise_clusters, vote_label, AnalyticsError, KMeansOptions, KMeansResult, SimilarityEdge,
+    VotingNeighbour, AUTOMATIC_N_CLUSTERS_CAP,
 };
 
 const SCIKIT_LEARN_VERSION: &str = "1.9.1";
@@ -297,6 +297,31 @@ fn kmeans_rejects_bad_input_with_typed_errors() {
             expected: 2
         })
     );
+}
+
+#[test]
+fn cluster_summaries_reject_inconsistent_input() {
+    let unit = [1.0f32, 0.0, 0.0, 1.0];
+    assert_eq!(
+        summarise_clusters(&unit, 2, &[0], 1),
+        Err(AnalyticsError::AssignmentsLength {
+            found: 1,
+            expected: 2
+        })
+    );
+    assert_eq!(
+        summarise_clusters(&unit, 2, &[0, 3], 2),
+        Err(AnalyticsError::ClusterOutOfRange {
+            row: 1,
+            cluster: 3,
+            n_clusters: 2
+        })
+    );
+    assert!(matches!(
+        summarise_cluster(&unit, 2, &[0, 2]),
+        Err(AnalyticsError::IndexOutOfRange { index: 2, .. })
+    ));
+    assert_eq!(summarise_cluster(&unit, 2, &[]), Ok(None));
 }
 
 #[test]

@@ -12,7 +12,7 @@ use std::path::Path;
 
 use image::metadata::Orientation;
 use image::{DynamicImage, ImageDecoder, ImageError, ImageFormat, ImageReader, Limits, RgbImage};
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 use crate::ImagingError;
 
@@ -45,7 +45,7 @@ impl Default for DecodeOptions {
 }
 
 /// The image formats we decode.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Serialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "lowercase")]
 pub enum ImageFormatKind {
     Jpeg,

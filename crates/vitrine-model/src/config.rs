@@ -44,6 +44,18 @@ pub enum FinalNorm {
     PooledOnly,
 }
 
+/// How the position grid is resized to another patch grid.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
+#[serde(rename_all = "snake_case")]
+pub enum PosInterpolation {
+    /// PyTorch bicubic without antialiasing (a = -0.75): ViT, DINOv2, CLIP.
+    #[default]
+    Bicubic,
+    /// PyTorch bicubic with antialiasing (a = -0.5, stretched kernel), as
+    /// transformers' DINOv2-with-registers uses.
+    BicubicAntialias,
+}
+
 /// How a token sequence becomes one embedding.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
@@ -77,6 +89,8 @@ pub struct VitConfig {
     /// Side of the patch grid the position table was trained at (37 for
     /// DINOv2 at 518 px); other grids are reached by bicubic interpolation.
     pub pos_grid: usize,
+    #[serde(default)]
+    pub pos_interpolation: PosInterpolation,
     pub num_registers: usize,
     pub layer_scale: bool,
     pub patch_bias: bool,

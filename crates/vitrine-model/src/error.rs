@@ -147,5 +147,8 @@ fn layout_mismatch_message(
         let shapes: Vec<String> = wrong_shape.iter().map(ToString::to_string).collect();
         parts.push(format!("wrong shape: {}", shapes.join(", ")));
     }
-    format!("tensors do not match the model layout ({})", parts.join("; "))
+    format!(
+        "tensors do not match the model layout ({})",
+        parts.join("; ")
+    )
 }

@@ -33,7 +33,7 @@ use candle_core::{DType, Device, Tensor};
 use safetensors::tensor::{Dtype, SafeTensors};
 use serde::Deserialize;
 
-use crate::config::{Activation, Family, FinalNorm, Projection, VitConfig};
+use crate::config::{Activation, Family, FinalNorm, PosInterpolation, Projection, VitConfig};
 use crate::error::{ModelError, ShapeMismatch};
 use crate::layout;
 
@@ -664,6 +664,12 @@ fn infer_config(
         patch_size,
         num_channels,
         pos_grid,
+        // transformers resizes the registers variant's grid with antialiasing.
+        pos_interpolation: if family == Family::Dinov2Registers {
+            PosInterpolation::BicubicAntialias
+        } else {
+            PosInterpolation::Bicubic
+        },
         num_registers,
         layer_scale: matches!(family, Family::Dinov2 | Family::Dinov2Registers),
         patch_bias: !is_clip,

@@ -184,9 +184,10 @@ pub fn resolve_model_path(path: &Path, cache_root: &Path) -> Result<PathBuf, Mod
     if is_complete_model_dir(&dir) {
         return Ok(dir);
     }
-    let id = path
-        .file_stem()
-        .map_or_else(|| "onnx-import".into(), |s| s.to_string_lossy().into_owned());
+    let id = path.file_stem().map_or_else(
+        || "onnx-import".into(),
+        |s| s.to_string_lossy().into_owned(),
+    );
     let source = format!("imported from {} (sha256 {digest})", path.display());
     import_onnx_dinov2(path, &dir, &id, &source)?;
     Ok(dir)

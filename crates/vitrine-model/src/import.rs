@@ -9,7 +9,8 @@ use std::path::Path;
 use vitrine_imaging::PreprocessSpec;
 
 use crate::config::{
-    Activation, Family, FinalNorm, ModelSpec, Pooling, VitConfig, MODEL_FORMAT_VERSION,
+    Activation, Family, FinalNorm, ModelSpec, Pooling, PosInterpolation, VitConfig,
+    MODEL_FORMAT_VERSION,
 };
 use crate::error::ModelError;
 use crate::model_dir::{write_model_dir, NamedTensor};
@@ -134,6 +135,7 @@ pub fn dinov2_backbone(graph: &GraphProto) -> Result<(VitConfig, Vec<NamedTensor
         patch_size,
         num_channels: channels,
         pos_grid,
+        pos_interpolation: PosInterpolation::Bicubic,
         num_registers,
         layer_scale: g.has("backbone.encoder.layer.0.layer_scale1.lambda1"),
         patch_bias: g.has("backbone.embeddings.patch_embeddings.projection.bias"),
@@ -169,7 +171,10 @@ pub fn dinov2_backbone(graph: &GraphProto) -> Result<(VitConfig, Vec<NamedTensor
         let node = format!("/backbone/encoder/layer.{i}");
         let dst = format!("blocks.{i}");
         let mut named = |canonical: &str, onnx_name: &str| -> Result<(), ModelError> {
-            out.push(copy(&format!("{dst}.{canonical}"), g.named(&format!("{src}.{onnx_name}"))?)?);
+            out.push(copy(
+                &format!("{dst}.{canonical}"),
+                g.named(&format!("{src}.{onnx_name}"))?,
+            )?);
             Ok(())
         };
         named("norm1.weight", "norm1.weight")?;

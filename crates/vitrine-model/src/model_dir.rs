@@ -66,14 +66,20 @@ pub fn write_model_dir(
 ) -> Result<ModelSpec, ModelError> {
     layout::check_layout(
         &spec.vit,
-        tensors.iter().map(|t| (t.name.as_str(), t.shape.as_slice())),
+        tensors
+            .iter()
+            .map(|t| (t.name.as_str(), t.shape.as_slice())),
     )?;
     for t in tensors {
         let count: usize = t.shape.iter().product();
         if count != t.data.len() {
             return Err(ModelError::MalformedTensor {
                 tensor: t.name.clone(),
-                reason: format!("shape {:?} needs {count} values, got {}", t.shape, t.data.len()),
+                reason: format!(
+                    "shape {:?} needs {count} values, got {}",
+                    t.shape,
+                    t.data.len()
+                ),
             });
         }
     }
@@ -163,7 +169,9 @@ pub fn verify_weights(dir: &Path, spec: &ModelSpec) -> Result<(), ModelError> {
 
 /// True when `dir` holds a readable spec whose weights verify.
 pub fn is_complete_model_dir(dir: &Path) -> bool {
-    read_spec(dir).and_then(|spec| verify_weights(dir, &spec)).is_ok()
+    read_spec(dir)
+        .and_then(|spec| verify_weights(dir, &spec))
+        .is_ok()
 }
 
 /// Loads a model directory: the spec, and every tensor on the CPU after
@@ -187,7 +195,9 @@ pub fn load_model_dir(dir: &Path) -> Result<(ModelSpec, HashMap<String, Tensor>)
     let views = file.tensors();
     layout::check_layout(
         &spec.vit,
-        views.iter().map(|(name, view)| (name.as_str(), view.shape())),
+        views
+            .iter()
+            .map(|(name, view)| (name.as_str(), view.shape())),
     )?;
     let mut tensors = HashMap::with_capacity(views.len());
     for (name, view) in &views {

@@ -163,15 +163,12 @@ impl TensorProto {
             .iter()
             .try_fold(1usize, |acc, &d| acc.checked_mul(d))
             .ok_or_else(|| self.malformed("element count overflows".into()))?;
-        let values: Vec<f32> = if !self.raw_data.is_empty() {
-            self.raw_data
-                .chunks_exact(4)
-                .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
-                .collect()
+        let sizes_agree = if self.raw_data.is_empty() {
+            self.float_data.len() == count
         } else {
-            self.float_data.clone()
+            count.checked_mul(4) == Some(self.raw_data.len())
         };
-        if values.len() != count || (!self.raw_data.is_empty() && self.raw_data.len() % 4 != 0) {
+        if !sizes_agree {
             return Err(self.malformed(format!(
                 "{count} elements expected from dims {:?}, found {} bytes of raw data and {} floats",
                 self.dims,
@@ -179,6 +176,14 @@ impl TensorProto {
                 self.float_data.len()
             )));
         }
+        let values = if self.raw_data.is_empty() {
+            self.float_data.clone()
+        } else {
+            self.raw_data
+                .chunks_exact(4)
+                .map(|b| f32::from_le_bytes([b[0], b[1], b[2], b[3]]))
+                .collect()
+        };
         Ok(values)
     }
 

@@ -301,7 +301,9 @@ impl VitModel {
         let resized = if (rows, cols) == (g, g) {
             self.grid_positions.clone()
         } else {
-            bicubic_resize_grid(&self.grid_positions, g, g, d, rows, cols)
+            bicubic_resize_grid(
+                self.cfg.pos_interpolation,
+                &self.grid_positions, g, g, d, rows, cols)
         };
         let grid = Tensor::from_vec(resized, (rows * cols, d), &self.device)?;
         let positions = Tensor::cat(&[&self.cls_position, &grid], 0)?;

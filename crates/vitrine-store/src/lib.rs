@@ -12,5 +12,6 @@ mod store;
 mod types;
 
 pub use error::StoreError;
+pub use graph::CosineDistance;
 pub use store::{Store, FORMAT_VERSION, OLDEST_READABLE_FORMAT};
 pub use types::{ChangeSet, FileError, HnswParams, ImageId, ImageRecord, ModelFingerprint, Upsert};

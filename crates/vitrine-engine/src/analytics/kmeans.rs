@@ -297,27 +297,36 @@ fn kmeans_plus_plus(vectors: &[f32], dim: usize, n_clusters: usize, seed: u64) -
             })
             .collect();
 
+        // Distances from every vector to every candidate, one n_rows x n_candidates block at
+        // a time, via ||x||^2 + ||c||^2 - 2 x.c; each block also sums, per candidate, the
+        // total distance to the nearest centre if that candidate were added.
         let candidate_vectors: Vec<f32> =
             candidates.iter().flat_map(|&c| row(c)).copied().collect();
-        let block_potentials =
+        let blocks =
             map_blocks_with_scores(vectors, &candidate_vectors, dim, |first_row, scores| {
+                let mut distances = scores.to_vec();
                 let mut potentials = vec![0f64; n_candidates];
-                for (offset, row_scores) in scores.chunks_exact(n_candidates).enumerate() {
+                for (offset, row_distances) in distances.chunks_exact_mut(n_candidates).enumerate()
+                {
                     let item = first_row + offset;
-                    for ((potential, &score), &candidate) in
-                        potentials.iter_mut().zip(row_scores).zip(&candidates)
+                    for ((distance, potential), &candidate) in row_distances
+                        .iter_mut()
+                        .zip(&mut potentials)
+                        .zip(&candidates)
                     {
-                        let distance = squared_norms[item] + squared_norms[candidate] - 2.0 * score;
-                        *potential += f64::from(distance.max(0.0).min(closest[item]));
+                        let squared =
+                            squared_norms[item] + squared_norms[candidate] - 2.0 * *distance;
+                        *distance = squared.max(0.0);
+                        *potential += f64::from(distance.min(closest[item]));
                     }
                 }
-                potentials
+                (distances, potentials)
             });
         let mut potentials = vec![0f64; n_candidates];
-        for block in &block_potentials {
+        for (_, block_potentials) in &blocks {
             potentials
                 .iter_mut()
-                .zip(block)
+                .zip(block_potentials)
                 .for_each(|(sum, part)| *sum += part);
         }
         let best = (0..n_candidates)
@@ -328,15 +337,15 @@ fn kmeans_plus_plus(vectors: &[f32], dim: usize, n_clusters: usize, seed: u64) -
                     best
                 }
             })
-            .map_or(first, |index| candidates[index]);
+            .unwrap_or(0);
 
-        centres.extend_from_slice(row(best));
-        closest
-            .par_iter_mut()
-            .zip(vectors.par_chunks(dim))
-            .for_each(|(closest, vector)| {
-                *closest = closest.min(squared_distance(vector, row(best)));
-            });
+        centres.extend_from_slice(row(candidates[best]));
+        let distances_to_best = blocks
+            .iter()
+            .flat_map(|(distances, _)| distances.chunks_exact(n_candidates).map(|d| d[best]));
+        for (closest, distance) in closest.iter_mut().zip(distances_to_best) {
+            *closest = closest.min(distance);
+        }
     }
     centres
 }
@@ -527,20 +536,19 @@ pub fn summarise_clusters(
 ) -> Result<Vec<Option<ClusterSummary>>, AnalyticsError> {
     let n_items = count_rows("vectors", vectors, dim)?;
     if assignments.len() != n_items {
-        return Err(AnalyticsError::InvalidParameter {
-            name: "assignments",
-            value: format!("{} entries", assignments.len()),
-            reason: "must hold one cluster index per vector",
+        return Err(AnalyticsError::AssignmentsLength {
+            found: assignments.len(),
+            expected: n_items,
         });
     }
     let mut members_by_cluster = vec![Vec::new(); n_clusters];
     for (row, &cluster) in assignments.iter().enumerate() {
         members_by_cluster
             .get_mut(cluster)
-            .ok_or(AnalyticsError::IndexOutOfRange {
-                what: "assignments (cluster index vs n_clusters)",
-                index: cluster,
-                n_items: n_clusters,
+            .ok_or(AnalyticsError::ClusterOutOfRange {
+                row,
+                cluster,
+                n_clusters,
             })?
             .push(row);
     }

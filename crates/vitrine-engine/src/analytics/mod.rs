@@ -55,6 +55,14 @@ pub enum AnalyticsError {
         value: String,
         reason: &'static str,
     },
+    #[error("assignments: holds {found} entries for {expected} vectors")]
+    AssignmentsLength { found: usize, expected: usize },
+    #[error("assignments: row {row} names cluster {cluster}, but n_clusters is {n_clusters}")]
+    ClusterOutOfRange {
+        row: usize,
+        cluster: usize,
+        n_clusters: usize,
+    },
     #[error("{what}: index {index} is out of range for {n_items} vectors")]
     IndexOutOfRange {
         what: &'static str,

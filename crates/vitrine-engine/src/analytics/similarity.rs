@@ -6,18 +6,34 @@ use rayon::prelude::*;
 /// `ROWS_PER_BLOCK * n_centres` floats while keeping blocks large enough for the kernel.
 const ROWS_PER_BLOCK: usize = 1024;
 
+/// Independent partial sums, so the compiler can keep them in one SIMD register (a single
+/// running f32 sum cannot be reordered and would stay scalar).
+const LANES: usize = 8;
+
+fn sum_of_pairs(left: &[f32], right: &[f32], term: impl Fn(f32, f32) -> f32) -> f32 {
+    let mut partial = [0f32; LANES];
+    let left_chunks = left.chunks_exact(LANES);
+    let right_chunks = right.chunks_exact(LANES);
+    let tail: f32 = left_chunks
+        .remainder()
+        .iter()
+        .zip(right_chunks.remainder())
+        .map(|(&a, &b)| term(a, b))
+        .sum();
+    for (left_chunk, right_chunk) in left_chunks.zip(right_chunks) {
+        for lane in 0..LANES {
+            partial[lane] += term(left_chunk[lane], right_chunk[lane]);
+        }
+    }
+    partial.iter().sum::<f32>() + tail
+}
+
 pub(crate) fn dot(left: &[f32], right: &[f32]) -> f32 {
-    left.iter().zip(right).map(|(a, b)| a * b).sum()
+    sum_of_pairs(left, right, |a, b| a * b)
 }
 
 pub(crate) fn squared_distance(left: &[f32], right: &[f32]) -> f32 {
-    left.iter()
-        .zip(right)
-        .map(|(a, b)| {
-            let difference = a - b;
-            difference * difference
-        })
-        .sum()
+    sum_of_pairs(left, right, |a, b| (a - b) * (a - b))
 }
 
 /// Splits `vectors` into blocks of rows and calls `per_block(first_row, scores)` on each, where

@@ -33,7 +33,10 @@ impl SyntheticExport {
     }
 
     pub fn graph_mut(&mut self) -> &mut GraphProto {
-        self.model.graph.as_mut().expect("synthetic model has a graph")
+        self.model
+            .graph
+            .as_mut()
+            .expect("synthetic model has a graph")
     }
 
     pub fn initializer_mut(&mut self, name: &str) -> &mut TensorProto {
@@ -98,7 +101,10 @@ pub fn synthetic_dinov2(layers: usize) -> SyntheticExport {
         "backbone.embeddings.patch_embeddings.projection.weight",
         vec![d, CHANNELS, PATCH, PATCH],
     );
-    add("backbone.embeddings.patch_embeddings.projection.bias", vec![d]);
+    add(
+        "backbone.embeddings.patch_embeddings.projection.bias",
+        vec![d],
+    );
     add("onnx::Concat_17", vec![1, 1, d]);
     add("onnx::Reshape_18", vec![1, GRID * GRID, d]);
     nodes.push(node(

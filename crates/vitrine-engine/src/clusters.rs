@@ -1,0 +1,145 @@
+//! Cluster summaries of a collection: spherical k-means (k-means++ seeding,
+//! deterministic with a seed) and, per cluster, its size, medoid image, top
+//! labels, split mix and cohesion.
+
+use std::collections::BTreeMap;
+
+use serde::Serialize;
+use vitrine_store::ImageId;
+
+use crate::analytics::kmeans::{automatic_n_clusters, kmeans, summarise_clusters, KMeansOptions};
+use crate::catalog::{dot, Catalog, ImageRef};
+use crate::error::EngineError;
+
+#[derive(Clone, Debug)]
+pub struct ClusterOptions {
+    /// `None`: chosen by [`automatic_n_clusters`] (about sqrt(n/2), capped).
+    pub n_clusters: Option<usize>,
+    pub seed: u64,
+}
+
+impl Default for ClusterOptions {
+    fn default() -> Self {
+        Self {
+            n_clusters: None,
+            seed: 7,
+        }
+    }
+}
+
+#[derive(Clone, Debug, Serialize)]
+pub struct LabelShare {
+    pub label: String,
+    pub count: usize,
+    pub share: f64,
+}
+
+#[derive(Clone, Debug, Serialize)]
+pub struct SplitCount {
+    pub split: String,
+    pub count: usize,
+}
+
+#[derive(Clone, Debug, Serialize)]
+pub struct ClusterSummary {
+    pub index: usize,
+    pub size: usize,
+    /// The member with the highest mean similarity to the others.
+    pub medoid: ImageRef,
+    /// Mean cosine similarity of the members to the cluster's centroid.
+    pub cohesion: f32,
+    /// Labels by decreasing share (unlabelled members are not counted).
+    pub top_labels: Vec<LabelShare>,
+    pub split_mix: Vec<SplitCount>,
+    /// Every member, most central first.
+    pub member_ids: Vec<ImageId>,
+}
+
+#[derive(Clone, Debug, Serialize)]
+pub struct ClusterReport {
+    pub n_clusters: usize,
+    pub seed: u64,
+    /// Largest first.
+    pub clusters: Vec<ClusterSummary>,
+}
+
+fn counts_by<'a>(values: impl Iterator<Item = Option<&'a String>>) -> BTreeMap<String, usize> {
+    let mut counts = BTreeMap::new();
+    for value in values {
+        *counts
+            .entry(value.cloned().unwrap_or_else(|| "(none)".into()))
+            .or_insert(0) += 1;
+    }
+    counts
+}
+
+pub fn cluster_collection(
+    catalog: &Catalog,
+    options: &ClusterOptions,
+) -> Result<ClusterReport, EngineError> {
+    let n_items = catalog.len();
+    if n_items == 0 {
+        return Ok(ClusterReport {
+            n_clusters: 0,
+            seed: options.seed,
+            clusters: Vec::new(),
+        });
+    }
+    let n_clusters = options
+        .n_clusters
+        .unwrap_or_else(|| automatic_n_clusters(n_items))
+        .min(n_items);
+    let kmeans_options = KMeansOptions {
+        seed: options.seed,
+        ..KMeansOptions::new(n_clusters)
+    };
+    let invalid = |e: crate::analytics::AnalyticsError| EngineError::InvalidArgument(e.to_string());
+    let result = kmeans(&catalog.embeddings, catalog.dim, &kmeans_options).map_err(invalid)?;
+    let summaries = summarise_clusters(&catalog.embeddings, catalog.dim, &result.assignments, n_clusters)
+        .map_err(invalid)?;
+    let mut members: Vec<Vec<usize>> = vec![Vec::new(); n_clusters];
+    for (row, &cluster) in result.assignments.iter().enumerate() {
+        members[cluster].push(row);
+    }
+    let mut clusters: Vec<ClusterSummary> = Vec::new();
+    for (index, (rows, summary)) in members.into_iter().zip(summaries).enumerate() {
+        let Some(summary) = summary else { continue };
+        let centroid = &result.centroids[index * catalog.dim..(index + 1) * catalog.dim];
+        let mut ordered = rows.clone();
+        ordered.sort_by(|&a, &b| {
+            dot(catalog.embedding_at(b), centroid).total_cmp(&dot(catalog.embedding_at(a), centroid))
+        });
+        let labelled: Vec<&String> = rows
+            .iter()
+            .filter_map(|&row| catalog.records[row].label.as_ref())
+            .collect();
+        let mut top_labels: Vec<LabelShare> = counts_by(labelled.iter().copied().map(Some))
+            .into_iter()
+            .map(|(label, count)| LabelShare {
+                label,
+                count,
+                share: count as f64 / labelled.len() as f64,
+            })
+            .collect();
+        top_labels.sort_by(|a, b| b.count.cmp(&a.count).then(a.label.cmp(&b.label)));
+        let split_mix = counts_by(rows.iter().map(|&row| catalog.records[row].split.as_ref()))
+            .into_iter()
+            .map(|(split, count)| SplitCount { split, count })
+            .collect();
+        clusters.push(ClusterSummary {
+            index,
+            size: rows.len(),
+            medoid: catalog.image_ref(summary.medoid),
+            cohesion: summary.cohesion,
+            top_labels,
+            split_mix,
+            member_ids: ordered.iter().map(|&row| catalog.ids[row]).collect(),
+        });
+    }
+    clusters.sort_by(|a, b| b.size.cmp(&a.size).then(a.index.cmp(&b.index)));
+    Ok(ClusterReport {
+        n_clusters,
+        seed: options.seed,
+        clusters,
+    })
+}

@@ -1,0 +1,245 @@
+//! One served collection: its store, the snapshot readers use, and memos of
+//! expensive whole-collection answers.
+//!
+//! Concurrency: the [`Store`] sits behind a read-write lock and everything a
+//! reader needs besides HNSW searches (records, embeddings, roots, errors)
+//! lives in an immutable [`Snapshot`] behind an `Arc` that readers clone. A
+//! writer (an index job) holds the write lock while it writes and, before
+//! releasing it, installs a fresh snapshot, so a reader holding the read lock
+//! always sees a snapshot that matches the store. The engine's indexer needs
+//! `&mut Store` for its whole run, so while a job runs neighbour queries are
+//! answered by exact search over the last snapshot (the true nearest
+//! neighbours of the last committed state) instead of waiting, and
+//! whole-collection analyses wait a bounded time and then answer 503.
+
+use std::path::PathBuf;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::Arc;
+use std::time::Duration;
+
+use parking_lot::{Mutex, RwLock};
+use vitrine_engine::catalog::{dot, Catalog};
+use vitrine_engine::duplicates::{DuplicateGroup, LeakReport};
+use vitrine_engine::neighbours::{nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter};
+use vitrine_engine::EngineError;
+use vitrine_store::{FileError, ImageId, ImageRecord, ModelFingerprint, Store};
+
+use crate::error::ApiError;
+
+/// Everything readers need about a collection at one committed state.
+pub struct Snapshot {
+    pub catalog: Catalog,
+    pub errors: Vec<FileError>,
+    pub fingerprint: ModelFingerprint,
+    pub roots: Vec<(u32, PathBuf)>,
+    pub index_disk_bytes: u64,
+    /// Increases with every installed snapshot; keys the memos.
+    pub generation: u64,
+}
+
+impl Snapshot {
+    fn load(store: &Store, generation: u64) -> Result<Self, EngineError> {
+        Ok(Self {
+            catalog: Catalog::load(store)?,
+            errors: store.errors()?,
+            fingerprint: store.fingerprint().clone(),
+            roots: store.roots(),
+            index_disk_bytes: store.index_disk_bytes(),
+            generation,
+        })
+    }
+}
+
+/// The last answer computed for one key at one generation.
+pub struct Memo<K, V> {
+    slot: Mutex<Option<(u64, K, Arc<V>)>>,
+}
+
+impl<K: PartialEq, V> Default for Memo<K, V> {
+    fn default() -> Self {
+        Self {
+            slot: Mutex::new(None),
+        }
+    }
+}
+
+impl<K: PartialEq, V> Memo<K, V> {
+    /// The memoised answer for (`generation`, `key`), else `compute`'s, kept.
+    /// Concurrent callers wait for one computation rather than repeat it.
+    pub fn get_or_try<E>(
+        &self,
+        generation: u64,
+        key: K,
+        compute: impl FnOnce() -> Result<V, E>,
+    ) -> Result<Arc<V>, E> {
+        let mut slot = self.slot.lock();
+        if let Some((g, k, value)) = slot.as_ref() {
+            if *g == generation && *k == key {
+                return Ok(value.clone());
+            }
+        }
+        let value = Arc::new(compute()?);
+        *slot = Some((generation, key, value.clone()));
+        Ok(value)
+    }
+}
+
+/// What a neighbour query starts from.
+pub enum Query<'a> {
+    Image(ImageId),
+    Vector(&'a [f32]),
+}
+
+pub struct Collection {
+    pub name: String,
+    pub dir: PathBuf,
+    store: RwLock<Store>,
+    snapshot: RwLock<Arc<Snapshot>>,
+    generations: AtomicU64,
+    /// Duplicate groups by threshold (as bits).
+    pub duplicates: Memo<u32, Vec<DuplicateGroup>>,
+    /// Leak reports by (evaluated splits, reference split, threshold bits).
+    pub leaks: Memo<(Vec<String>, String, u32), LeakReport>,
+}
+
+impl Collection {
+    pub fn open(name: String, dir: PathBuf) -> Result<Self, EngineError> {
+        let store = Store::open(&dir)?;
+        let snapshot = Snapshot::load(&store, 0)?;
+        Ok(Self {
+            name,
+            dir,
+            store: RwLock::new(store),
+            snapshot: RwLock::new(Arc::new(snapshot)),
+            generations: AtomicU64::new(0),
+            duplicates: Memo::default(),
+            leaks: Memo::default(),
+        })
+    }
+
+    /// The current snapshot; cheap.
+    pub fn snapshot(&self) -> Arc<Snapshot> {
+        self.snapshot.read().clone()
+    }
+
+    /// Runs `f` with shared access to the store and its matching snapshot,
+    /// waiting at most `wait` for a writer to finish.
+    pub fn with_store<R>(
+        &self,
+        wait: Duration,
+        f: impl FnOnce(&Store, &Snapshot) -> Result<R, ApiError>,
+    ) -> Result<R, ApiError> {
+        let store = self.store.try_read_for(wait).ok_or_else(|| {
+            ApiError::unavailable(
+                "collection_busy",
+                format!(
+                    "an index job is writing collection `{}`; retry when it finishes",
+                    self.name
+                ),
+            )
+        })?;
+        let snapshot = self.snapshot();
+        f(&store, &snapshot)
+    }
+
+    /// Runs a writer with exclusive access to the store, then installs a new
+    /// snapshot before other threads can see the store again (also when the
+    /// writer failed half-way: what it committed is visible).
+    pub fn write<R>(
+        &self,
+        f: impl FnOnce(&mut Store) -> Result<R, EngineError>,
+    ) -> Result<R, EngineError> {
+        let mut store = self.store.write();
+        let outcome = f(&mut store);
+        let generation = self.generations.fetch_add(1, Ordering::SeqCst) + 1;
+        let fresh = Snapshot::load(&store, generation)?;
+        *self.snapshot.write() = Arc::new(fresh);
+        outcome
+    }
+
+    /// Up to `k` nearest neighbours, best first: from the HNSW index when the
+    /// store is free, else exactly from the snapshot (see the module comment).
+    pub fn nearest(
+        &self,
+        query: Query<'_>,
+        k: usize,
+        filter: &NeighbourFilter,
+    ) -> Result<Vec<Neighbour>, ApiError> {
+        if let Some(store) = self.store.try_read() {
+            let snapshot = self.snapshot();
+            let catalog = &snapshot.catalog;
+            return Ok(match query {
+                Query::Image(id) => nearest_to_image(&store, catalog, id, k, filter)?,
+                Query::Vector(vector) => {
+                    nearest_to_vector(&store, catalog, vector, k, filter, None)?
+                }
+            });
+        }
+        let snapshot = self.snapshot();
+        exact_nearest(&snapshot.catalog, query, k, filter)
+    }
+}
+
+fn accepts(filter: &NeighbourFilter, record: &ImageRecord) -> bool {
+    filter
+        .split
+        .as_ref()
+        .is_none_or(|s| record.split.as_ref() == Some(s))
+        && filter
+            .label
+            .as_ref()
+            .is_none_or(|l| record.label.as_ref() == Some(l))
+        && filter
+            .path_prefix
+            .as_ref()
+            .is_none_or(|p| record.rel_path.starts_with(p.as_str()))
+}
+
+/// Brute-force nearest neighbours over a catalog, with the same validation
+/// and exclusions as the engine's index search.
+fn exact_nearest(
+    catalog: &Catalog,
+    query: Query<'_>,
+    k: usize,
+    filter: &NeighbourFilter,
+) -> Result<Vec<Neighbour>, ApiError> {
+    let (vector, exclude) = match query {
+        Query::Image(id) => {
+            let row = catalog.row(id).ok_or(EngineError::UnknownImage(id))?;
+            (catalog.embedding_at(row).to_vec(), Some(row))
+        }
+        Query::Vector(vector) => {
+            if vector.len() != catalog.dim {
+                return Err(ApiError::bad_request(
+                    "dimension_mismatch",
+                    format!(
+                        "query vector has {} dimensions, the collection has {}",
+                        vector.len(),
+                        catalog.dim
+                    ),
+                ));
+            }
+            let norm = dot(vector, vector).sqrt();
+            if !norm.is_normal() {
+                return Err(ApiError::bad_request(
+                    "invalid_vector",
+                    "query vector is not a finite, non-zero vector",
+                ));
+            }
+            (vector.iter().map(|v| v / norm).collect(), None)
+        }
+    };
+    let mut scored: Vec<(usize, f32)> = (0..catalog.len())
+        .filter(|&row| Some(row) != exclude && accepts(filter, &catalog.records[row]))
+        .map(|row| (row, dot(&vector, catalog.embedding_at(row))))
+        .collect();
+    scored.sort_unstable_by(|a, b| b.1.total_cmp(&a.1));
+    scored.truncate(k);
+    Ok(scored
+        .into_iter()
+        .map(|(row, similarity)| Neighbour {
+            image: catalog.image_ref(row),
+            similarity,
+        })
+        .collect())
+}

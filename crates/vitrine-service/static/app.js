@@ -1,0 +1,1126 @@
+// vitrine review page: plain JavaScript, no framework, talks only to its own
+// origin (the JSON API under /api/v1). Views are chosen by the URL hash
+// (#/search, #/duplicates, #/leakage, #/clusters, #/image/ID) so every view
+// can be bookmarked and the browser's back button works.
+(() => {
+  'use strict';
+
+  const API = '/api/v1';
+  const THUMB_SIZE = 160;
+  const DETAIL_SIZE = 512;
+  const TIERS = ['bytes', 'pixels', 'near'];
+  const TIER_TEXT = {
+    bytes: 'identical bytes',
+    pixels: 'identical pixels',
+    near: 'near-duplicate',
+  };
+  // Distinguishable on a light background and for common colour-vision deficiencies.
+  const SPLIT_COLOURS = ['#1f4e8c', '#c2410c', '#1d6a38', '#6a3d9e', '#8a4a08', '#0f5f5a'];
+
+  const state = {
+    collections: [],
+    collection: null,
+    status: null,
+    controller: null,
+    lastPath: null,
+    // The last image dropped or picked in Search; kept so that changing a
+    // filter re-runs the same query without asking for the file again.
+    searchFile: null,
+    searchFileUrl: null,
+    pendingG: false,
+  };
+
+  // ------------------------------------------------------------------ DOM
+
+  /** Creates an element: h('a', {href, class, onclick}, 'text', child, [more]). */
+  function h(tag, attrs, ...children) {
+    const el = document.createElement(tag);
+    for (const [key, value] of Object.entries(attrs || {})) {
+      if (value === undefined || value === null || value === false) continue;
+      if (key === 'class') el.className = value;
+      else if (key === 'dataset') Object.assign(el.dataset, value);
+      else if (key.startsWith('on') && typeof value === 'function') el.addEventListener(key.slice(2), value);
+      else if (key === 'text') el.textContent = value;
+      else if (value === true) el.setAttribute(key, '');
+      else el.setAttribute(key, String(value));
+    }
+    append(el, children);
+    return el;
+  }
+
+  function append(el, children) {
+    for (const child of children.flat(Infinity)) {
+      if (child === null || child === undefined || child === false) continue;
+      el.append(child instanceof Node ? child : document.createTextNode(String(child)));
+    }
+    return el;
+  }
+
+  function announce(text) {
+    const el = document.getElementById('announcer');
+    el.textContent = '';
+    // A fresh text node after a tick is announced even when it repeats.
+    setTimeout(() => { el.textContent = text; }, 30);
+  }
+
+  // ------------------------------------------------------------------ API
+
+  class ApiError extends Error {
+    constructor(status, code, message) {
+      super(message);
+      this.status = status;
+      this.code = code;
+    }
+  }
+
+  async function api(path, options = {}) {
+    let response;
+    try {
+      response = await fetch(API + path, {
+        method: options.method || 'GET',
+        body: options.body,
+        signal: options.signal,
+        headers: Object.assign({ Accept: 'application/json' }, options.headers || {}),
+      });
+    } catch (err) {
+      if (err.name === 'AbortError') throw err;
+      throw new ApiError(0, 'unreachable', 'The vitrine service did not answer. Is `vitrine serve` still running?');
+    }
+    const text = await response.text();
+    let data = null;
+    if (text) {
+      try { data = JSON.parse(text); } catch (_) { data = null; }
+    }
+    if (!response.ok) {
+      const error = (data && data.error) || {};
+      throw new ApiError(response.status, error.code || `http_${response.status}`,
+        error.message || response.statusText || 'The request failed.');
+    }
+    return data;
+  }
+
+  function collectionPath(suffix) {
+    return `/collections/${encodeURIComponent(state.collection)}${suffix}`;
+  }
+
+  /** '?a=1&b=x' from an object, leaving out empty values; arrays repeat the key. */
+  function queryString(params) {
+    const search = new URLSearchParams();
+    for (const [key, value] of Object.entries(params)) {
+      if (Array.isArray(value)) value.forEach((v) => search.append(key, v));
+      else if (value !== undefined && value !== null && value !== '') search.append(key, value);
+    }
+    const text = search.toString();
+    return text ? `?${text}` : '';
+  }
+
+  function thumbnailUrl(id, size = THUMB_SIZE) {
+    return `${API}${collectionPath(`/images/${encodeURIComponent(id)}/thumbnail`)}?size=${size}`;
+  }
+
+  // ------------------------------------------------ defensive field access
+
+  /** The first of `keys` that `obj` has (not null). */
+  function pick(obj, ...keys) {
+    if (!obj || typeof obj !== 'object') return undefined;
+    for (const key of keys) {
+      if (obj[key] !== undefined && obj[key] !== null) return obj[key];
+    }
+    return undefined;
+  }
+
+  /** An array from a response that is either the array or an object holding it. */
+  function listOf(data, ...keys) {
+    if (Array.isArray(data)) return data;
+    for (const key of keys) {
+      const value = pick(data, key);
+      if (Array.isArray(value)) return value;
+    }
+    return [];
+  }
+
+  /** An image reference, whether its fields are flat or under `image`. */
+  function imageOf(item) {
+    if (!item || typeof item !== 'object') return {};
+    if (item.image && typeof item.image === 'object') return Object.assign({}, item, item.image);
+    return item;
+  }
+
+  /** Names from a list of strings, of {name|split|label}, or of a name->count map. */
+  function namesOf(value) {
+    if (Array.isArray(value)) {
+      return value.map((v) => (typeof v === 'string' ? v : pick(v, 'name', 'split', 'label'))).filter(Boolean);
+    }
+    if (value && typeof value === 'object') return Object.keys(value);
+    return [];
+  }
+
+  function countOf(value) {
+    if (typeof value === 'number') return value;
+    if (Array.isArray(value)) return value.length;
+    if (value && typeof value === 'object') {
+      const n = pick(value, 'count', 'total', 'len');
+      if (typeof n === 'number') return n;
+    }
+    return undefined;
+  }
+
+  function formatScore(value) {
+    return typeof value === 'number' && Number.isFinite(value) ? value.toFixed(3) : '–';
+  }
+
+  function formatBytes(n) {
+    if (typeof n !== 'number') return '';
+    if (n < 1024) return `${n} B`;
+    if (n < 1024 * 1024) return `${(n / 1024).toFixed(1)} KiB`;
+    return `${(n / 1024 / 1024).toFixed(1)} MiB`;
+  }
+
+  function formatPercent(share) {
+    return typeof share === 'number' ? `${(share * 100).toFixed(share < 0.1 ? 1 : 0)}%` : '';
+  }
+
+  function altText(img) {
+    const split = img.split ? `split ${img.split}` : 'no split';
+    const label = img.label ? `label ${img.label}` : 'no label';
+    return `${img.path || `image ${img.id}`} (${split}, ${label})`;
+  }
+
+  // ------------------------------------------------------------- routing
+
+  function parseHash() {
+    const raw = location.hash.replace(/^#/, '');
+    const [path, qs = ''] = raw.split('?');
+    return { path: path && path.startsWith('/') ? path : '/search', params: new URLSearchParams(qs) };
+  }
+
+  function href(path, params = {}) {
+    return `#${path}${queryString(params)}`;
+  }
+
+  /** The current view's address with some parameters changed. */
+  function hrefWith(updates) {
+    const { path, params } = parseHash();
+    const merged = Object.fromEntries(params.entries());
+    for (const key of params.keys()) {
+      const all = params.getAll(key);
+      if (all.length > 1) merged[key] = all;
+    }
+    Object.assign(merged, updates);
+    return href(path, merged);
+  }
+
+  function navigate(target) {
+    if (location.hash === target) route();
+    else location.hash = target;
+  }
+
+  const routes = [
+    { pattern: /^\/search$/, view: 'search', render: renderSearch },
+    { pattern: /^\/duplicates$/, view: 'duplicates', render: renderDuplicates },
+    { pattern: /^\/leakage$/, view: 'leakage', render: renderLeakage },
+    { pattern: /^\/clusters$/, view: 'clusters', render: renderClusters },
+    { pattern: /^\/clusters\/([^/]+)$/, view: 'clusters', render: renderCluster },
+    { pattern: /^\/image\/([^/]+)$/, view: null, render: renderImage },
+  ];
+
+  async function route() {
+    const { path, params } = parseHash();
+    const match = routes.map((r) => ({ r, m: r.pattern.exec(path) })).find((x) => x.m);
+    if (state.controller) state.controller.abort();
+    const controller = new AbortController();
+    state.controller = controller;
+
+    for (const link of document.querySelectorAll('.views a')) {
+      if (match && link.dataset.view === match.r.view) link.setAttribute('aria-current', 'page');
+      else link.removeAttribute('aria-current');
+    }
+
+    const root = document.getElementById('view');
+    const pathChanged = state.lastPath !== path;
+    state.lastPath = path;
+    root.replaceChildren();
+    if (!match) {
+      root.append(emptyState('This page does not exist.', h('span', {}, 'Go to ', h('a', { href: '#/search' }, 'Search'), '.')));
+      return;
+    }
+    if (!state.collection) {
+      root.append(emptyState('No collection is being served.',
+        'Index a folder with `vitrine index`, then start `vitrine serve` again.'));
+      return;
+    }
+    const ctx = {
+      root,
+      params,
+      signal: controller.signal,
+      arg: match.m[1] !== undefined ? decodeURIComponent(match.m[1]) : undefined,
+      isCurrent: () => state.controller === controller,
+    };
+    try {
+      await match.r.render(ctx);
+    } catch (err) {
+      if (err.name === 'AbortError' || !ctx.isCurrent()) return;
+      root.append(errorState(err, () => route()));
+    }
+    if (pathChanged && ctx.isCurrent()) {
+      const heading = root.querySelector('h1');
+      if (heading) {
+        heading.setAttribute('tabindex', '-1');
+        heading.focus({ preventScroll: true });
+      }
+      window.scrollTo(0, 0);
+    }
+  }
+
+  // --------------------------------------------------------- components
+
+  function loadingState(text) {
+    return h('div', { class: 'state loading', role: 'status' }, h('span', { class: 'spinner', 'aria-hidden': 'true' }), text);
+  }
+
+  function emptyState(title, hint) {
+    return h('div', { class: 'state empty', dataset: { state: 'empty' } }, h('h2', {}, title), hint ? h('p', {}, hint) : null);
+  }
+
+  function errorState(err, retry) {
+    const code = err instanceof ApiError ? err.code : 'page_error';
+    return h('div', { class: 'state error', role: 'alert', dataset: { state: 'error' } },
+      h('h2', {}, 'Something went wrong'),
+      h('p', {}, err.message || String(err), ' ', h('code', {}, code)),
+      retry ? h('button', { type: 'button', onclick: retry }, 'Try again') : null);
+  }
+
+  /** Replaces `slot`'s content with a loading line while `work` runs; errors land in the slot. */
+  async function fill(ctx, slot, text, work) {
+    slot.replaceChildren(loadingState(text));
+    slot.setAttribute('aria-busy', 'true');
+    try {
+      const nodes = await work();
+      if (!ctx.isCurrent()) return;
+      slot.replaceChildren(...[nodes].flat().filter(Boolean));
+    } catch (err) {
+      if (err.name === 'AbortError' || !ctx.isCurrent()) return;
+      slot.replaceChildren(errorState(err, () => fill(ctx, slot, text, work)));
+    } finally {
+      slot.removeAttribute('aria-busy');
+    }
+  }
+
+  function viewHead(title, lede, ...extra) {
+    return h('div', { class: 'view-head' },
+      h('div', {}, h('h1', {}, title), lede ? h('p', { class: 'lede' }, lede) : null), extra);
+  }
+
+  function thumb(img, size = THUMB_SIZE, cls = 'thumb') {
+    const el = h('img', {
+      class: cls,
+      src: thumbnailUrl(img.id, size),
+      alt: altText(img),
+      loading: 'lazy',
+      decoding: 'async',
+      width: size,
+      height: size,
+    });
+    el.addEventListener('error', () => {
+      const missing = h('span', { class: `${cls} missing`, role: 'img', 'aria-label': altText(img) }, 'no preview');
+      el.replaceWith(missing);
+    }, { once: true });
+    return el;
+  }
+
+  function chip(text, cls) {
+    return h('span', { class: `chip ${cls}` }, text);
+  }
+
+  function tierChip(tier) {
+    const known = TIERS.includes(tier) ? tier : 'near';
+    return h('span', { class: `chip tier tier-${known}`, title: TIER_TEXT[known] }, tier || 'near');
+  }
+
+  function splitLabelChips(img) {
+    return h('div', { class: 'chips' },
+      img.split ? chip(img.split, 'split') : chip('no split', 'none'),
+      img.label ? chip(img.label, 'label') : chip('unlabelled', 'none'));
+  }
+
+  function scoreBar(value) {
+    const width = Math.max(0, Math.min(1, typeof value === 'number' ? value : 0)) * 100;
+    return h('div', { class: 'scorebar', 'aria-hidden': 'true' }, h('span', { style: `width:${width.toFixed(1)}%` }));
+  }
+
+  /**
+   * One image as a card: its thumbnail links to the image's detail page.
+   * options: score, tier, keeper, rank, meta (text), actions (nodes), tag (element name)
+   */
+  function imageCard(item, options = {}) {
+    const img = imageOf(item);
+    const detail = href(`/image/${encodeURIComponent(img.id)}`);
+    const card = h(options.tag || 'article', {
+      class: `card${options.keeper ? ' is-keeper' : ''}`,
+      dataset: { id: String(img.id), path: img.path || '' },
+    });
+    if (options.rank !== undefined) card.append(h('span', { class: 'rank', 'aria-hidden': 'true' }, `#${options.rank}`));
+    card.append(h('a', { class: 'thumb-link', href: detail }, thumb(img)));
+    if (options.keeper !== undefined || options.tier || options.score !== undefined) {
+      card.append(h('div', { class: 'row' },
+        h('div', { class: 'chips' },
+          options.keeper ? chip('suggested keeper', 'keeper') : null,
+          options.tier ? tierChip(options.tier) : null),
+        options.score !== undefined
+          ? h('span', { class: 'score', title: 'cosine similarity' }, h('span', { class: 'visually-hidden' }, 'similarity '), formatScore(options.score))
+          : null));
+      if (options.score !== undefined) card.append(scoreBar(options.score));
+    }
+    card.append(h('p', { class: 'path' }, h('a', { href: detail }, img.path || `image ${img.id}`)));
+    card.append(splitLabelChips(img));
+    if (options.meta) card.append(h('p', { class: 'meta' }, options.meta));
+    if (options.actions) card.append(h('div', { class: 'actions' }, options.actions));
+    return card;
+  }
+
+  function searchFromLink(img) {
+    return h('a', { href: href('/search', { id: img.id }) }, 'Find similar');
+  }
+
+  /** Prev / next links for a paged list. */
+  function pager({ page, perPage, total, shown }) {
+    const pages = typeof total === 'number' ? Math.max(1, Math.ceil(total / perPage)) : undefined;
+    const hasNext = pages !== undefined ? page < pages : shown >= perPage;
+    const prev = h('a', { class: 'button', href: hrefWith({ page: page - 1 }), rel: 'prev', dataset: { pager: 'prev' } }, '← Previous');
+    const next = h('a', { class: 'button', href: hrefWith({ page: page + 1 }), rel: 'next', dataset: { pager: 'next' } }, 'Next →');
+    if (page <= 1) prev.setAttribute('aria-disabled', 'true');
+    if (!hasNext) next.setAttribute('aria-disabled', 'true');
+    const where = pages !== undefined
+      ? `Page ${page} of ${pages} · ${total} in all`
+      : `Page ${page}`;
+    return h('nav', { class: 'pager', 'aria-label': 'Pages' }, prev, h('span', { class: 'where' }, where), next);
+  }
+
+  function pageParams(params, defaultPerPage) {
+    const page = Math.max(1, parseInt(params.get('page') || '1', 10) || 1);
+    const perPage = Math.max(1, Math.min(1000, parseInt(params.get('per_page') || String(defaultPerPage), 10) || defaultPerPage));
+    return { page, perPage };
+  }
+
+  function perPageSelect(current, choices) {
+    const select = h('select', { id: 'per-page' }, choices.map((n) => h('option', { value: n, selected: n === current }, String(n))));
+    select.addEventListener('change', () => navigate(hrefWith({ per_page: select.value, page: 1 })));
+    return h('div', { class: 'field' }, h('label', { for: 'per-page' }, 'Per page'), select);
+  }
+
+  /** A similarity threshold slider that re-queries when the user settles on a value. */
+  function thresholdControl(current, onSettle) {
+    const id = 'threshold';
+    const input = h('input', { type: 'range', id, min: '0.70', max: '1', step: '0.005', value: current.toFixed(3) });
+    const output = h('output', { for: id }, current.toFixed(3));
+    let timer = null;
+    input.addEventListener('input', () => { output.textContent = Number(input.value).toFixed(3); });
+    input.addEventListener('change', () => {
+      clearTimeout(timer);
+      timer = setTimeout(() => onSettle(Number(input.value)), 250);
+    });
+    return h('div', { class: 'field' },
+      h('label', { for: id }, 'Similarity threshold'),
+      h('div', { class: 'threshold' }, input, output));
+  }
+
+  function selectField(id, labelText, options, current, onChange) {
+    const select = h('select', { id },
+      options.map(([value, text]) => h('option', { value, selected: value === (current || '') }, text)));
+    select.addEventListener('change', () => onChange(select.value));
+    return h('div', { class: 'field' }, h('label', { for: id }, labelText), select);
+  }
+
+  function splitNames() { return namesOf(pick(state.status, 'splits')); }
+  function labelNames() { return namesOf(pick(state.status, 'labels')); }
+
+  // ------------------------------------------------------ roving focus
+
+  /**
+   * Makes the items of `list` a roving-focus sequence: one is in the tab
+   * order; j/k and the arrow keys (see onKeydown) move between them.
+   */
+  function makeReviewList(list) {
+    list.classList.add('js-review');
+    const items = list.querySelectorAll(':scope > li > .review-item, :scope > li > .cluster');
+    items.forEach((item, index) => item.setAttribute('tabindex', index === 0 ? '0' : '-1'));
+    list.addEventListener('focusin', (event) => {
+      const item = event.target.closest('.review-item, .cluster');
+      if (item && list.contains(item)) setCurrent(list, item);
+    });
+  }
+
+  function reviewItems(list) {
+    return Array.from(list.querySelectorAll(':scope > li > .review-item, :scope > li > .cluster'));
+  }
+
+  function setCurrent(list, item) {
+    for (const other of list.querySelectorAll('.is-current')) {
+      if (other !== item) {
+        other.classList.remove('is-current');
+        other.setAttribute('tabindex', '-1');
+      }
+    }
+    item.classList.add('is-current');
+    item.setAttribute('tabindex', '0');
+  }
+
+  function moveInReview(step) {
+    const list = document.querySelector('#view .js-review');
+    if (!list) return false;
+    const items = reviewItems(list);
+    if (!items.length) return false;
+    const current = list.querySelector('.is-current') || null;
+    let index = current ? items.indexOf(current) + step : 0;
+    if (index < 0) index = 0;
+    if (index >= items.length) {
+      announce('End of this page. Press n for the next page.');
+      index = items.length - 1;
+    }
+    const item = items[index];
+    setCurrent(list, item);
+    item.focus({ preventScroll: true });
+    item.scrollIntoView({ block: 'nearest' });
+    return true;
+  }
+
+  function isTyping(target) {
+    return target instanceof HTMLElement &&
+      (target.isContentEditable || ['INPUT', 'SELECT', 'TEXTAREA'].includes(target.tagName));
+  }
+
+  function onKeydown(event) {
+    if (event.altKey || event.ctrlKey || event.metaKey || isTyping(event.target)) return;
+    const key = event.key;
+    if (state.pendingG) {
+      state.pendingG = false;
+      const views = { s: '#/search', d: '#/duplicates', l: '#/leakage', c: '#/clusters' };
+      if (views[key]) { event.preventDefault(); navigate(views[key]); }
+      return;
+    }
+    const inReview = event.target instanceof Element && event.target.closest('.js-review');
+    if (key === 'j' || (key === 'ArrowDown' && inReview)) {
+      if (moveInReview(1)) event.preventDefault();
+    } else if (key === 'k' || (key === 'ArrowUp' && inReview)) {
+      if (moveInReview(-1)) event.preventDefault();
+    } else if (key === 'Enter' && event.target.matches && event.target.matches('.review-item, .cluster')) {
+      const link = event.target.querySelector('a[data-open], a.thumb-link');
+      if (link) { event.preventDefault(); link.click(); }
+    } else if (key === 'n' || key === 'p') {
+      const link = document.querySelector(`#view [data-pager="${key === 'n' ? 'next' : 'prev'}"]:not([aria-disabled])`);
+      if (link) { event.preventDefault(); link.click(); }
+    } else if (key === 'g') {
+      state.pendingG = true;
+      setTimeout(() => { state.pendingG = false; }, 1200);
+    }
+  }
+
+  // ------------------------------------------------------------ Search
+
+  async function renderSearch(ctx) {
+    const { params, root } = ctx;
+    const filters = {
+      split: params.get('split') || '',
+      label: params.get('label') || '',
+      prefix: params.get('prefix') || '',
+      k: parseInt(params.get('k') || '24', 10) || 24,
+    };
+    const queryId = params.get('id');
+    if (queryId) state.searchFile = null;
+
+    const fileInput = h('input', { type: 'file', id: 'query-file', accept: 'image/jpeg,image/png,image/webp', class: 'visually-hidden' });
+    const dropzone = h('div', { class: 'dropzone', dataset: { testid: 'dropzone' } },
+      h('strong', {}, 'Drop an image here'),
+      h('p', {}, 'JPEG, PNG or WebP. It is compared with the collection, not added to it.'),
+      h('label', { for: 'query-file', class: 'button primary' }, 'Choose an image…'),
+      fileInput);
+    const preview = h('div', { class: 'query-preview', hidden: true });
+    const filterForm = searchFilters(filters);
+    const results = h('section', { class: 'results', 'aria-labelledby': 'results-head' });
+    const browse = h('section', { class: 'browse', 'aria-labelledby': 'browse-head' });
+
+    root.append(
+      viewHead('Search by image', 'Start from an image of your own or from any indexed image; its nearest neighbours are listed by cosine similarity.'),
+      h('div', { class: 'search-layout' },
+        h('aside', { class: 'query-panel', 'aria-label': 'Query' }, dropzone, preview, filterForm),
+        h('div', {}, results, browse)));
+
+    const useFile = (file) => {
+      if (!file) return;
+      if (!['image/jpeg', 'image/png', 'image/webp'].includes(file.type)) {
+        results.replaceChildren(errorState(new ApiError(0, 'unsupported_type', `${file.name} is not a JPEG, PNG or WebP image.`)));
+        return;
+      }
+      state.searchFile = file;
+      if (state.searchFileUrl) URL.revokeObjectURL(state.searchFileUrl);
+      state.searchFileUrl = URL.createObjectURL(file);
+      if (params.get('id')) navigate(hrefWith({ id: '' }));
+      else runSearch(ctx, filters, null, preview, results);
+    };
+    fileInput.addEventListener('change', () => useFile(fileInput.files && fileInput.files[0]));
+    dropzone.addEventListener('dragover', (event) => { event.preventDefault(); dropzone.classList.add('is-over'); });
+    dropzone.addEventListener('dragleave', () => dropzone.classList.remove('is-over'));
+    dropzone.addEventListener('drop', (event) => {
+      event.preventDefault();
+      dropzone.classList.remove('is-over');
+      useFile(event.dataTransfer && event.dataTransfer.files[0]);
+    });
+
+    if (queryId || state.searchFile) runSearch(ctx, filters, queryId, preview, results);
+    else {
+      results.append(h('div', { class: 'section-head' }, h('h2', { id: 'results-head' }, 'Nearest neighbours')),
+        emptyState('No query yet.', 'Drop or choose an image, or pick one from the collection below.'));
+    }
+    renderBrowse(ctx, filters, browse);
+  }
+
+  function searchFilters(filters) {
+    const splitSelect = h('select', { id: 'filter-split', name: 'split' },
+      h('option', { value: '' }, 'any split'),
+      splitNames().map((s) => h('option', { value: s, selected: s === filters.split }, s)));
+    const labelSelect = h('select', { id: 'filter-label', name: 'label' },
+      h('option', { value: '' }, 'any label'),
+      labelNames().map((l) => h('option', { value: l, selected: l === filters.label }, l)));
+    const prefix = h('input', { type: 'search', id: 'filter-prefix', name: 'prefix', value: filters.prefix, placeholder: 'e.g. train/mug/', autocomplete: 'off', spellcheck: 'false' });
+    const k = h('input', { type: 'number', id: 'filter-k', name: 'k', min: '1', max: '200', value: String(filters.k) });
+    const form = h('form', { class: 'filters', 'aria-label': 'Filters' },
+      h('h2', {}, 'Filters'),
+      h('div', { class: 'field' }, h('label', { for: 'filter-split' }, 'Split'), splitSelect),
+      h('div', { class: 'field' }, h('label', { for: 'filter-label' }, 'Label'), labelSelect),
+      h('div', { class: 'field' }, h('label', { for: 'filter-prefix' }, 'Folder prefix'), prefix),
+      h('div', { class: 'field' }, h('label', { for: 'filter-k' }, 'Neighbours'), k),
+      h('div', { class: 'buttons' },
+        h('button', { type: 'submit', class: 'primary' }, 'Apply'),
+        h('a', { class: 'button', href: hrefWith({ split: '', label: '', prefix: '', page: '' }) }, 'Clear')));
+    form.addEventListener('submit', (event) => {
+      event.preventDefault();
+      navigate(hrefWith({ split: splitSelect.value, label: labelSelect.value, prefix: prefix.value.trim(), k: k.value, page: '' }));
+    });
+    return form;
+  }
+
+  function runSearch(ctx, filters, queryId, preview, results) {
+    const q = { k: filters.k, split: filters.split, label: filters.label, prefix: filters.prefix };
+    preview.hidden = false;
+    if (queryId) {
+      preview.replaceChildren(h('p', { class: 'side-label' }, 'Query: indexed image'),
+        h('img', { src: thumbnailUrl(queryId, 320), alt: `query image ${queryId}` }));
+      api(collectionPath(`/images/${encodeURIComponent(queryId)}`), { signal: ctx.signal }).then((meta) => {
+        const img = imageOf(meta);
+        const shown = preview.querySelector('img');
+        if (shown) shown.alt = `query: ${altText(img)}`;
+        preview.append(h('p', { class: 'path' }, h('a', { href: href(`/image/${encodeURIComponent(queryId)}`) }, img.path || queryId)), splitLabelChips(img));
+      }).catch(() => {});
+    } else {
+      const file = state.searchFile;
+      preview.replaceChildren(h('p', { class: 'side-label' }, 'Query: your image'),
+        h('img', { src: state.searchFileUrl, alt: `query: uploaded file ${file.name}` }),
+        h('p', { class: 'path' }, `${file.name} · ${formatBytes(file.size)}`));
+    }
+
+    const head = h('div', { class: 'section-head' }, h('h2', { id: 'results-head' }, 'Nearest neighbours'));
+    const body = h('div', {});
+    results.replaceChildren(head, body);
+    fill(ctx, body, 'Looking for neighbours…', async () => {
+      const data = queryId
+        ? await api(collectionPath(`/images/${encodeURIComponent(queryId)}/neighbours`) + queryString(q), { signal: ctx.signal })
+        : await api(collectionPath('/search') + queryString(q), {
+          method: 'POST',
+          body: state.searchFile,
+          headers: { 'Content-Type': state.searchFile.type },
+          signal: ctx.signal,
+        });
+      const hits = listOf(data, 'hits', 'neighbours', 'results').map(imageOf)
+        .filter((hit) => String(hit.id) !== String(queryId));
+      announce(`${hits.length} neighbours found.`);
+      head.append(h('p', {}, describeFilters(filters, hits.length)));
+      if (!hits.length) {
+        return emptyState('No neighbours match these filters.', 'Clear a filter or widen the folder prefix.');
+      }
+      return h('ol', { class: 'grid', dataset: { testid: 'hits' } },
+        hits.map((hit, index) => imageCard(hit, {
+          tag: 'li',
+          rank: index + 1,
+          score: pick(hit, 'similarity', 'score'),
+          actions: [searchFromLink(hit)],
+        })));
+    });
+  }
+
+  function describeFilters(filters, count) {
+    const parts = [];
+    if (filters.split) parts.push(`split ${filters.split}`);
+    if (filters.label) parts.push(`label ${filters.label}`);
+    if (filters.prefix) parts.push(`under ${filters.prefix}`);
+    return `${count} shown${parts.length ? `, ${parts.join(', ')}` : ''}; higher is more similar (1.000 = same embedding).`;
+  }
+
+  function renderBrowse(ctx, filters, section) {
+    const { page, perPage } = pageParams(ctx.params, 48);
+    const head = h('div', { class: 'section-head' },
+      h('h2', { id: 'browse-head' }, 'Browse the collection'),
+      h('p', {}, 'Pick any indexed image to use it as the query.'));
+    const body = h('div', {});
+    section.replaceChildren(head, body);
+    fill(ctx, body, 'Loading images…', async () => {
+      const data = await api(collectionPath('/images') + queryString({
+        page, per_page: perPage, split: filters.split, label: filters.label, prefix: filters.prefix,
+      }), { signal: ctx.signal });
+      const images = listOf(data, 'images', 'items').map(imageOf);
+      const total = pick(data, 'total');
+      if (!images.length) return emptyState('No indexed image matches these filters.', 'Clear the filters to see the whole collection.');
+      return [
+        h('ul', { class: 'grid', dataset: { testid: 'browse' } }, images.map((img) => imageCard(img, {
+          tag: 'li',
+          actions: [h('a', { href: hrefWith({ id: img.id }), dataset: { query: String(img.id) } }, 'Use as query')],
+        }))),
+        pager({ page, perPage, total, shown: images.length }),
+      ];
+    });
+  }
+
+  // -------------------------------------------------------- Duplicates
+
+  async function renderDuplicates(ctx) {
+    const { params, root } = ctx;
+    const { page, perPage } = pageParams(params, 50);
+    const threshold = params.get('threshold');
+    const slot = h('div', {});
+    const summary = h('p', { class: 'lede', 'aria-live': 'polite' });
+    let shownGroups = [];
+    let shownThreshold = threshold ? Number(threshold) : undefined;
+
+    const exportButtons = [
+      h('button', { type: 'button', dataset: { export: 'csv' }, onclick: () => exportGroups('csv', shownGroups, shownThreshold) }, 'Export CSV'),
+      h('button', { type: 'button', dataset: { export: 'json' }, onclick: () => exportGroups('json', shownGroups, shownThreshold) }, 'Export JSON'),
+    ];
+    exportButtons.forEach((b) => { b.disabled = true; });
+    const toolbarSlot = h('div', { class: 'toolbar', role: 'group', 'aria-label': 'Duplicate settings' });
+
+    root.append(
+      viewHead('Duplicates', 'Groups of copies of one picture. The suggested keeper (largest, then first by path) is outlined in green; every other member is a candidate to review.'),
+      toolbarSlot, summary, slot);
+
+    const buildToolbar = (value) => {
+      toolbarSlot.replaceChildren(
+        thresholdControl(value, (v) => navigate(hrefWith({ threshold: v.toFixed(3), page: 1 }))),
+        perPageSelect(perPage, [25, 50, 100, 200, 500, 1000]),
+        h('span', { class: 'spacer' }),
+        exportButtons);
+    };
+    buildToolbar(shownThreshold !== undefined ? shownThreshold : 0.9);
+
+    await fill(ctx, slot, 'Finding duplicate groups…', async () => {
+      const data = await api(collectionPath('/duplicates') + queryString({ threshold, page, per_page: perPage }), { signal: ctx.signal });
+      const groups = listOf(data, 'groups');
+      const total = pick(data, 'total');
+      const served = pick(data, 'threshold', 'near_duplicate_threshold');
+      if (shownThreshold === undefined && typeof served === 'number') {
+        shownThreshold = served;
+        buildToolbar(served);
+      }
+      shownGroups = groups;
+      exportButtons.forEach((b) => { b.disabled = !groups.length; });
+      const count = typeof total === 'number' ? total : groups.length;
+      const tierCounts = TIERS.map((t) => [t, groups.filter((g) => g.tier === t).length]).filter(([, n]) => n);
+      summary.textContent = `${count} group${count === 1 ? '' : 's'}` +
+        (shownThreshold !== undefined ? ` at similarity ≥ ${shownThreshold.toFixed(3)}` : '') +
+        (tierCounts.length ? ` · this page: ${tierCounts.map(([t, n]) => `${n} ${TIER_TEXT[t]}`).join(', ')}` : '') +
+        '. Use j / k to step through the groups.';
+      announce(`${count} duplicate groups.`);
+      if (!groups.length) {
+        return emptyState('No duplicate groups at this threshold.',
+          'Lower the similarity threshold to include looser near-duplicates.');
+      }
+      const offset = (page - 1) * perPage;
+      const list = h('ol', { class: 'review-list', dataset: { testid: 'groups' }, 'aria-label': 'Duplicate groups' });
+      const fragment = document.createDocumentFragment();
+      groups.forEach((group, index) => fragment.append(h('li', {}, duplicateGroup(group, offset + index + 1))));
+      list.append(fragment);
+      makeReviewList(list);
+      return [list, pager({ page, perPage, total, shown: groups.length })];
+    });
+  }
+
+  function duplicateGroup(group, number) {
+    const members = listOf(group, 'members').map(imageOf);
+    const headingId = `group-${number}`;
+    return h('section', { class: 'review-item group', 'aria-labelledby': headingId, dataset: { tier: group.tier || '' } },
+      h('header', {},
+        h('h2', { id: headingId }, `Group ${number}`),
+        tierChip(group.tier),
+        h('span', { class: 'count' }, `${members.length} images`)),
+      h('div', { class: 'members' }, members.map((m) => imageCard(m, {
+        keeper: Boolean(m.keeper),
+        tier: m.keeper ? null : m.tier,
+        score: m.keeper ? undefined : pick(m, 'similarity'),
+        meta: [m.width && m.height ? `${m.width}×${m.height}` : '', formatBytes(m.byte_size)].filter(Boolean).join(' · '),
+      }))));
+  }
+
+  const CSV_COLUMNS = ['group', 'group_tier', 'id', 'path', 'root', 'split', 'label', 'tier', 'similarity', 'keeper', 'width', 'height', 'byte_size'];
+
+  function csvField(value) {
+    let text = value === undefined || value === null ? '' : String(value);
+    // A leading = + - @ would be read as a formula by spreadsheet programs.
+    if (/^[=+\-@]/.test(text) && typeof value !== 'number') text = `'${text}`;
+    return /[",\r\n]/.test(text) ? `"${text.replace(/"/g, '""')}"` : text;
+  }
+
+  function exportGroups(format, groups, threshold) {
+    const stamp = new Date().toISOString().replace(/[:]/g, '-').replace(/\..*/, '');
+    const name = `${state.collection}-duplicates-${stamp}`;
+    if (format === 'json') {
+      const body = JSON.stringify({ collection: state.collection, threshold, groups }, null, 2);
+      download(`${name}.json`, 'application/json', body);
+    } else {
+      const rows = [CSV_COLUMNS.join(',')];
+      groups.forEach((group, index) => {
+        for (const member of listOf(group, 'members').map(imageOf)) {
+          rows.push([index + 1, group.tier, member.id, member.path, member.root, member.split, member.label,
+            member.tier, member.similarity, member.keeper, member.width, member.height, member.byte_size].map(csvField).join(','));
+        }
+      });
+      download(`${name}.csv`, 'text/csv', `${rows.join('\r\n')}\r\n`);
+    }
+    announce(`Exported ${groups.length} groups as ${format.toUpperCase()}.`);
+  }
+
+  function download(filename, type, text) {
+    const url = URL.createObjectURL(new Blob([text], { type }));
+    const link = h('a', { href: url, download: filename, hidden: true });
+    document.body.append(link);
+    link.click();
+    link.remove();
+    setTimeout(() => URL.revokeObjectURL(url), 5000);
+  }
+
+  // ----------------------------------------------------------- Leakage
+
+  async function renderLeakage(ctx) {
+    const { params, root } = ctx;
+    const { page, perPage } = pageParams(params, 50);
+    const splits = splitNames();
+    const against = params.get('against') || (splits.includes('train') ? 'train' : splits[0] || 'train');
+    const chosen = params.getAll('split').filter((s) => s !== against);
+    const threshold = params.get('threshold');
+
+    const checks = splits.filter((s) => s !== against).map((s) => {
+      const id = `eval-${s}`;
+      const box = h('input', { type: 'checkbox', id, value: s, checked: !chosen.length || chosen.includes(s) });
+      box.addEventListener('change', () => {
+        const picked = Array.from(root.querySelectorAll('.checks input:checked')).map((b) => b.value);
+        navigate(hrefWith({ split: picked, page: 1 }));
+      });
+      return h('label', { for: id }, box, s);
+    });
+    const toolbar = h('div', { class: 'toolbar', role: 'group', 'aria-label': 'Leakage settings' },
+      h('fieldset', { class: 'field' }, h('legend', {}, 'Evaluated splits'), h('div', { class: 'checks' }, checks.length ? checks : h('span', {}, 'no other split'))),
+      selectField('against', 'Reference split', splits.map((s) => [s, s]), against,
+        (value) => navigate(hrefWith({ against: value, split: [], page: 1 }))),
+      thresholdControl(threshold ? Number(threshold) : 0.9, (v) => navigate(hrefWith({ threshold: v.toFixed(3), page: 1 }))),
+      perPageSelect(perPage, [25, 50, 100, 200]));
+    const summarySlot = h('div', {});
+    const listSlot = h('div', {});
+    root.append(
+      viewHead('Leakage', `Images of the evaluated splits that have a copy or near-copy in the reference split (${against}). A leaked test image makes a model look better than it is.`),
+      toolbar, summarySlot, listSlot);
+
+    await fill(ctx, listSlot, 'Comparing splits…', async () => {
+      const data = await api(collectionPath('/leaks') + queryString({
+        split: chosen, against, threshold, page, per_page: perPage,
+      }), { signal: ctx.signal });
+      const reference = pick(data, 'reference_split') || against;
+      const summary = listOf(data, 'summary');
+      summarySlot.replaceChildren(leakSummary(summary, reference));
+      const leaks = listOf(data, 'leaks', 'pairs');
+      const total = pick(data, 'total');
+      announce(`${typeof total === 'number' ? total : leaks.length} leaked images.`);
+      if (!leaks.length) {
+        return emptyState(`No image of the evaluated splits has a copy in ${reference}.`,
+          'At a lower threshold looser near-duplicates are reported too.');
+      }
+      const offset = (page - 1) * perPage;
+      const list = h('ol', { class: 'review-list', dataset: { testid: 'leaks' }, 'aria-label': 'Leaked pairs' });
+      const fragment = document.createDocumentFragment();
+      leaks.forEach((leak, index) => fragment.append(h('li', {}, leakPair(leak, offset + index + 1, reference))));
+      list.append(fragment);
+      makeReviewList(list);
+      return [list, pager({ page, perPage, total, shown: leaks.length })];
+    });
+  }
+
+  function leakSummary(summary, reference) {
+    if (!summary.length) return null;
+    return h('table', { class: 'summary', dataset: { testid: 'leak-summary' } },
+      h('caption', {}, `Leakage into ${reference}, per evaluated split`),
+      h('thead', {}, h('tr', {},
+        h('th', { scope: 'col' }, 'Split'), h('th', { scope: 'col' }, 'Images'), h('th', { scope: 'col' }, 'Leaked'),
+        h('th', { scope: 'col' }, 'Share'), h('th', { scope: 'col' }, h('span', { class: 'visually-hidden' }, 'Share as a bar')))),
+      h('tbody', {}, summary.map((row) => {
+        const images = pick(row, 'images', 'total') || 0;
+        const leaked = pick(row, 'leaked') || 0;
+        const percent = typeof row.leaked_percent === 'number' ? row.leaked_percent : (images ? (100 * leaked) / images : 0);
+        return h('tr', {},
+          h('th', { scope: 'row' }, row.split),
+          h('td', {}, String(images)),
+          h('td', {}, String(leaked)),
+          h('td', {}, `${percent.toFixed(1)}%`),
+          h('td', { class: 'bar-cell' }, h('div', { class: 'meter', 'aria-hidden': 'true' }, h('span', { style: `width:${Math.min(100, percent)}%` }))));
+      })));
+  }
+
+  function leakPair(leak, number, reference) {
+    const leaked = imageOf(leak);
+    const counterpart = imageOf(pick(leak, 'counterpart', 'reference') || {});
+    const headingId = `leak-${number}`;
+    return h('section', { class: 'review-item', 'aria-labelledby': headingId, dataset: { path: leaked.path || '', counterpart: counterpart.path || '' } },
+      h('header', {}, h('h2', { id: headingId }, `Pair ${number}`),
+        h('span', { class: 'count' }, `${leaked.split || '?'} → ${counterpart.split || reference}`)),
+      h('div', { class: 'pair' },
+        h('div', {}, h('p', { class: 'side-label' }, `Evaluated (${leaked.split || '?'})`), imageCard(leaked)),
+        h('div', { class: 'link' },
+          h('span', { class: 'arrow', 'aria-hidden': 'true' }, '⟷'),
+          h('span', { class: 'score' }, h('span', { class: 'visually-hidden' }, 'similarity '), formatScore(leak.similarity)),
+          tierChip(leak.tier),
+          h('span', { class: 'arrow' }, 'cosine similarity')),
+        h('div', {}, h('p', { class: 'side-label' }, `Reference (${counterpart.split || reference})`), imageCard(counterpart))));
+  }
+
+  // ---------------------------------------------------------- Clusters
+
+  function clusterQuery(params) {
+    return { k: params.get('k') || '', seed: params.get('seed') || '' };
+  }
+
+  async function renderClusters(ctx) {
+    const { params, root } = ctx;
+    const q = clusterQuery(params);
+    const kInput = h('input', { type: 'number', id: 'cluster-k', min: '2', max: '500', value: q.k, placeholder: 'auto' });
+    const seedInput = h('input', { type: 'number', id: 'cluster-seed', min: '0', value: q.seed, placeholder: 'default' });
+    const form = h('form', { class: 'toolbar', 'aria-label': 'Cluster settings' },
+      h('div', { class: 'field' }, h('label', { for: 'cluster-k' }, 'Clusters (k)'), kInput),
+      h('div', { class: 'field' }, h('label', { for: 'cluster-seed' }, 'Seed'), seedInput),
+      h('button', { type: 'submit', class: 'primary' }, 'Recompute'));
+    form.addEventListener('submit', (event) => {
+      event.preventDefault();
+      navigate(hrefWith({ k: kInput.value, seed: seedInput.value }));
+    });
+    const slot = h('div', {});
+    root.append(viewHead('Clusters', 'The collection grouped by visual similarity (spherical k-means). Each cluster shows its medoid, a few members, its main labels and its split mix.'), form, slot);
+
+    await fill(ctx, slot, 'Clustering the collection…', async () => {
+      const data = await api(collectionPath('/clusters') + queryString(q), { signal: ctx.signal });
+      const clusters = listOf(data, 'clusters');
+      announce(`${clusters.length} clusters.`);
+      if (!clusters.length) return emptyState('No clusters.', 'The collection needs a few indexed images first.');
+      const list = h('ol', { class: 'cluster-grid', dataset: { testid: 'clusters' }, 'aria-label': 'Clusters' },
+        clusters.map((c) => h('li', {}, clusterCard(c, q))));
+      makeReviewList(list);
+      return list;
+    });
+  }
+
+  function splitMix(mix) {
+    const rows = listOf(mix).map((r) => ({ split: pick(r, 'split', 'name') || 'none', count: pick(r, 'count') || 0 }));
+    const total = rows.reduce((sum, r) => sum + r.count, 0) || 1;
+    const names = splitNames();
+    const colour = (split) => SPLIT_COLOURS[(names.indexOf(split) + SPLIT_COLOURS.length) % SPLIT_COLOURS.length];
+    return h('div', {},
+      h('div', { class: 'splitmix', 'aria-hidden': 'true' },
+        rows.map((r) => h('span', { style: `width:${(100 * r.count) / total}%;background:${colour(r.split)}` }))),
+      h('ul', { class: 'legend', 'aria-label': 'Split mix' },
+        rows.map((r) => h('li', {}, h('i', { style: `background:${colour(r.split)}`, 'aria-hidden': 'true' }), `${r.split} ${r.count}`))));
+  }
+
+  function topLabels(labels) {
+    const rows = listOf(labels).slice(0, 4);
+    if (!rows.length) return h('p', { class: 'kv' }, 'No labelled members.');
+    return h('ul', { class: 'labels-list', 'aria-label': 'Top labels' }, rows.map((r) => h('li', {},
+      h('span', {}, pick(r, 'label', 'name')),
+      h('div', { class: 'meter', 'aria-hidden': 'true' }, h('span', { style: `width:${Math.round(100 * (r.share || 0))}%` })),
+      h('span', { class: 'share' }, formatPercent(r.share)))));
+  }
+
+  function clusterCard(cluster, q) {
+    const index = pick(cluster, 'index', 'id');
+    const medoid = imageOf(pick(cluster, 'medoid') || {});
+    const preview = listOf(pick(cluster, 'members_preview', 'preview') || []).map(imageOf)
+      .filter((m) => String(m.id) !== String(medoid.id)).slice(0, 4);
+    const open = href(`/clusters/${encodeURIComponent(index)}`, q);
+    const headingId = `cluster-${index}`;
+    return h('section', { class: 'cluster', 'aria-labelledby': headingId, dataset: { index: String(index) } },
+      h('header', {},
+        h('h2', { id: headingId }, `Cluster ${index}`),
+        h('span', { class: 'size' }, `${cluster.size} images`)),
+      h('div', { class: 'pictures' },
+        medoid.id !== undefined
+          ? h('a', { class: 'medoid', href: href(`/image/${encodeURIComponent(medoid.id)}`) }, thumb(medoid, THUMB_SIZE, 'medoid-img'), h('span', { class: 'medoid-tag' }, 'medoid'))
+          : null,
+        preview.map((m) => h('a', { href: href(`/image/${encodeURIComponent(m.id)}`) }, thumb(m, 96, 'preview-img')))),
+      topLabels(pick(cluster, 'top_labels')),
+      splitMix(pick(cluster, 'split_mix')),
+      h('p', { class: 'kv' }, `Cohesion ${formatScore(cluster.cohesion)} (mean similarity to the centre)`),
+      h('a', { class: 'button', href: open, dataset: { open: String(index) } }, `Open cluster ${index}`));
+  }
+
+  async function renderCluster(ctx) {
+    const { params, root, arg } = ctx;
+    const { page, perPage } = pageParams(params, 60);
+    const q = clusterQuery(params);
+    const slot = h('div', {});
+    const facts = h('div', {});
+    root.append(
+      h('p', {}, h('a', { href: href('/clusters', q) }, '← All clusters')),
+      viewHead(`Cluster ${arg}`, 'Every member, most central first.'),
+      facts, slot);
+    await fill(ctx, slot, 'Loading members…', async () => {
+      const data = await api(collectionPath(`/clusters/${encodeURIComponent(arg)}`) + queryString(Object.assign({ page, per_page: perPage }, q)), { signal: ctx.signal });
+      const summary = pick(data, 'cluster', 'summary') || data || {};
+      const members = listOf(data, 'members', 'images', 'items').map(imageOf);
+      const total = pick(data, 'total') !== undefined ? pick(data, 'total') : pick(summary, 'size');
+      const parts = [];
+      if (typeof total === 'number') parts.push(h('span', {}, `${total} images`));
+      if (summary.cohesion !== undefined) parts.push(h('span', {}, ` · cohesion ${formatScore(summary.cohesion)}`));
+      facts.replaceChildren(h('div', { class: 'toolbar' },
+        h('div', {}, parts),
+        pick(summary, 'top_labels') ? h('div', { style: 'min-width:16rem' }, topLabels(summary.top_labels)) : null,
+        pick(summary, 'split_mix') ? h('div', { style: 'min-width:14rem' }, splitMix(summary.split_mix)) : null));
+      if (!members.length) return emptyState('This cluster has no members on this page.', 'Go back to the first page.');
+      return [
+        h('ul', { class: 'grid', dataset: { testid: 'cluster-members' } }, members.map((m) => imageCard(m, {
+          tag: 'li', score: pick(m, 'similarity'), actions: [searchFromLink(m)],
+        }))),
+        pager({ page, perPage, total, shown: members.length }),
+      ];
+    });
+  }
+
+  // -------------------------------------------------------- Image detail
+
+  async function renderImage(ctx) {
+    const { root, arg } = ctx;
+    const meta = await api(collectionPath(`/images/${encodeURIComponent(arg)}`), { signal: ctx.signal });
+    const img = imageOf(meta);
+    const hashes = pick(meta, 'hashes') || {};
+    const hashRows = Array.isArray(hashes)
+      ? hashes.map((x) => [pick(x, 'name', 'algorithm', 'kind') || 'hash', pick(x, 'value', 'hex', 'digest')])
+      : Object.entries(hashes);
+    const facts = [
+      ['Path', img.path],
+      ['Root', img.root],
+      ['Split', img.split || '(none)'],
+      ['Label', img.label || '(none)'],
+      ['Size', img.width && img.height ? `${img.width} × ${img.height} px` : undefined],
+      ['File size', formatBytes(img.byte_size)],
+      ['Id', String(img.id)],
+      ...hashRows.map(([name, value]) => [name, h('code', {}, String(value))]),
+    ].filter(([, value]) => value !== undefined && value !== '');
+
+    const suggestionSlot = h('div', {});
+    const neighboursSlot = h('section', { 'aria-labelledby': 'neighbours-head' });
+    root.append(
+      viewHead(img.path || `Image ${arg}`, null, h('a', { class: 'button primary', href: href('/search', { id: img.id }) }, 'Search with this image')),
+      h('div', { class: 'detail' },
+        h('img', { class: 'big', src: thumbnailUrl(img.id, DETAIL_SIZE), alt: altText(img) }),
+        h('div', {},
+          h('dl', { class: 'facts' }, facts.map(([k, v]) => [h('dt', {}, k), h('dd', {}, v)])),
+          suggestionSlot)),
+      neighboursSlot);
+
+    fill(ctx, suggestionSlot, 'Asking the neighbours for a label…', async () => labelSuggestion(ctx, img));
+    const head = h('h2', { id: 'neighbours-head' }, 'Nearest neighbours');
+    const body = h('div', {});
+    neighboursSlot.replaceChildren(h('div', { class: 'section-head' }, head, h('a', { href: href('/search', { id: img.id }) }, 'Filter these in Search →')), body);
+    await fill(ctx, body, 'Looking for neighbours…', async () => {
+      const data = await api(collectionPath(`/images/${encodeURIComponent(arg)}/neighbours`) + queryString({ k: 12 }), { signal: ctx.signal });
+      const hits = listOf(data, 'hits', 'neighbours').map(imageOf).filter((hit) => String(hit.id) !== String(img.id));
+      if (!hits.length) return emptyState('No neighbours.', 'This image is alone in the collection.');
+      return h('ol', { class: 'grid', dataset: { testid: 'neighbours' } }, hits.map((hit, index) => imageCard(hit, {
+        tag: 'li', rank: index + 1, score: pick(hit, 'similarity', 'score'), actions: [searchFromLink(hit)],
+      })));
+    });
+  }
+
+  /** The k-NN label vote for one image, from the service's suggestion list. */
+  async function labelSuggestion(ctx, img) {
+    const data = await api(collectionPath('/labels/suggestions') + queryString({ id: img.id }), { signal: ctx.signal });
+    const mine = listOf(data, 'suggestions', 'items').map(imageOf).find((s) => String(s.id) === String(img.id)) ||
+      (data && !Array.isArray(data) && String(pick(data, 'id')) === String(img.id) ? data : null);
+    const box = (cls, ...content) => h('div', { class: `suggestion ${cls}`, dataset: { testid: 'suggestion' } }, h('h2', {}, 'Label suggestion'), content);
+    if (!mine) {
+      return box('', h('p', {}, img.label
+        ? `Labelled “${img.label}”; the service has no suggestion for it.`
+        : 'No suggestion: the neighbours do not agree enough on a label.'));
+    }
+    const suggested = pick(mine, 'suggested_label');
+    const leading = pick(mine, 'leading_label');
+    const confidence = pick(mine, 'confidence');
+    if (!suggested) {
+      return box('', h('p', {}, `The neighbours abstain${leading ? `; “${leading}” leads with ${formatPercent(confidence)} of the vote` : ''}.`));
+    }
+    const disagrees = img.label && img.label !== suggested;
+    return box(disagrees ? 'disagrees' : '',
+      h('p', {}, h('strong', {}, suggested), ` · ${formatPercent(confidence)} of the neighbours' weighted vote`),
+      disagrees ? h('p', {}, `It is labelled “${img.label}”: worth a second look.`) : null,
+      h('p', { class: 'kv' }, 'A suggestion from similar images, not a verdict.'));
+  }
+
+  // ------------------------------------------------------------ start
+
+  async function loadCollection(name) {
+    state.collection = name;
+    state.status = null;
+    const stats = document.getElementById('collection-stats');
+    stats.textContent = '';
+    try {
+      state.status = await api(collectionPath('/status'));
+      const images = countOf(pick(state.status, 'images', 'image_count'));
+      const errors = countOf(pick(state.status, 'errors', 'error_count'));
+      const model = pick(state.status, 'model');
+      const modelName = typeof model === 'string' ? model : pick(model, 'id', 'name');
+      stats.textContent = [
+        images !== undefined ? `${images.toLocaleString('en')} images` : null,
+        errors ? `${errors} unreadable` : null,
+        modelName ? `model ${modelName}` : null,
+      ].filter(Boolean).join(' · ');
+    } catch (err) {
+      stats.textContent = `status unavailable (${err.message})`;
+    }
+  }
+
+  async function start() {
+    document.addEventListener('keydown', onKeydown);
+    document.querySelector('[data-skip]').addEventListener('click', (event) => {
+      event.preventDefault();
+      document.getElementById('main').focus();
+    });
+    window.addEventListener('hashchange', route);
+    const select = document.getElementById('collection-select');
+    try {
+      const data = await api('/collections');
+      state.collections = listOf(data, 'collections').map((c) => (typeof c === 'string' ? c : pick(c, 'name', 'id'))).filter(Boolean);
+    } catch (err) {
+      document.getElementById('view').replaceChildren(errorState(err, () => location.reload()));
+      return;
+    }
+    select.replaceChildren(...state.collections.map((name) => h('option', { value: name }, name)));
+    select.disabled = state.collections.length < 2;
+    const remembered = sessionStorage.getItem('vitrine.collection');
+    const first = state.collections.includes(remembered) ? remembered : state.collections[0];
+    if (first) {
+      select.value = first;
+      await loadCollection(first);
+    }
+    select.addEventListener('change', async () => {
+      sessionStorage.setItem('vitrine.collection', select.value);
+      state.searchFile = null;
+      await loadCollection(select.value);
+      navigate(`#${parseHash().path}`);
+    });
+    if (!location.hash.startsWith('#/')) history.replaceState(null, '', '#/search');
+    route();
+  }
+
+  start();
+})();
