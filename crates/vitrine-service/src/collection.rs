@@ -19,7 +19,9 @@ use std::time::Duration;
 
 use parking_lot::{Mutex, RwLock};
 use vitrine_engine::catalog::{dot, Catalog};
+use vitrine_engine::clusters::ClusterReport;
 use vitrine_engine::duplicates::{DuplicateGroup, LeakReport};
+use vitrine_engine::labels::{LabelSuggestion, LabelSuspect};
 use vitrine_engine::neighbours::{nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter};
 use vitrine_engine::EngineError;
 use vitrine_store::{FileError, ImageId, ImageRecord, ModelFingerprint, Store};
@@ -100,6 +102,12 @@ pub struct Collection {
     pub duplicates: Memo<u32, Vec<DuplicateGroup>>,
     /// Leak reports by (evaluated splits, reference split, threshold bits).
     pub leaks: Memo<(Vec<String>, String, u32), LeakReport>,
+    /// Clusterings by (requested number of clusters, seed).
+    pub clusters: Memo<(Option<usize>, u64), ClusterReport>,
+    /// Label suggestions by (k, min_confidence bits).
+    pub label_suggestions: Memo<(usize, u32), Vec<LabelSuggestion>>,
+    /// Label suspects by (k, min_confidence bits, min_disagreement bits).
+    pub label_suspects: Memo<(usize, u32, u32), Vec<LabelSuspect>>,
 }
 
 impl Collection {
@@ -114,6 +122,9 @@ impl Collection {
             generations: AtomicU64::new(0),
             duplicates: Memo::default(),
             leaks: Memo::default(),
+            clusters: Memo::default(),
+            label_suggestions: Memo::default(),
+            label_suspects: Memo::default(),
         })
     }
 

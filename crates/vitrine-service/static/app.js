@@ -698,7 +698,7 @@
     const toolbarSlot = h('div', { class: 'toolbar', role: 'group', 'aria-label': 'Duplicate settings' });
 
     root.append(
-      viewHead('Duplicates', 'Groups of copies of one picture. The suggested keeper (largest, then first by path) is outlined in green; every other member is a candidate to review.'),
+      viewHead('Duplicates', 'Groups of copies of one picture. The suggested keeper (most pixels, then largest file) is outlined in green; the others are copies to review.'),
       toolbarSlot, summary, slot);
 
     const buildToolbar = (value) => {
@@ -706,7 +706,7 @@
         thresholdControl(value, (v) => navigate(hrefWith({ threshold: v.toFixed(3), page: 1 }))),
         perPageSelect(perPage, [25, 50, 100, 200, 500, 1000]),
         h('span', { class: 'spacer' }),
-        exportButtons);
+        ...exportButtons);
     };
     buildToolbar(shownThreshold !== undefined ? shownThreshold : 0.9);
 
@@ -733,7 +733,7 @@
           'Lower the similarity threshold to include looser near-duplicates.');
       }
       const offset = (page - 1) * perPage;
-      const list = h('ol', { class: 'review-list', dataset: { testid: 'groups' }, 'aria-label': 'Duplicate groups' });
+      const list = h('ol', { class: 'review-list tiles', dataset: { testid: 'groups' }, 'aria-label': 'Duplicate groups' });
       const fragment = document.createDocumentFragment();
       groups.forEach((group, index) => fragment.append(h('li', {}, duplicateGroup(group, offset + index + 1))));
       list.append(fragment);
@@ -841,7 +841,7 @@
           'At a lower threshold looser near-duplicates are reported too.');
       }
       const offset = (page - 1) * perPage;
-      const list = h('ol', { class: 'review-list', dataset: { testid: 'leaks' }, 'aria-label': 'Leaked pairs' });
+      const list = h('ol', { class: 'review-list tiles', dataset: { testid: 'leaks' }, 'aria-label': 'Leaked pairs' });
       const fragment = document.createDocumentFragment();
       leaks.forEach((leak, index) => fragment.append(h('li', {}, leakPair(leak, offset + index + 1, reference))));
       list.append(fragment);
