@@ -21,7 +21,10 @@ use vitrine_engine::neighbours::{nearest_to_image, nearest_to_vector, Neighbour,
 use vitrine_engine::splits::SplitRule;
 use vitrine_engine::walk::WalkOptions;
 use vitrine_imaging::{decode_path, preprocess, DecodeOptions};
+use vitrine_imaging::PreprocessSpec;
+use vitrine_model::config::Pooling;
 use vitrine_model::encoder::Encoder;
+use vitrine_model::families::{import_checkpoint, FamilyHints, ImportSettings};
 use vitrine_model::fetch::{default_model_root, fetch_default_model, resolve_model_path};
 use vitrine_store::Store;
 
@@ -163,6 +166,51 @@ pub enum ModelCommand {
     Fetch,
     /// Show the model that would be used.
     Info,
+    /// Import a checkpoint (transformers-layout safetensors folder with
+    /// config.json, or an ONNX export of the default family) as a model directory.
+    Import(ImportArgs),
+}
+
+#[derive(Args, Debug)]
+pub struct ImportArgs {
+    /// The checkpoint: a folder with model.safetensors (+ config.json), or an .onnx file.
+    source: PathBuf,
+    /// The model directory to write.
+    #[arg(long, value_name = "DIR")]
+    out: PathBuf,
+    /// A short name recorded with every embedding.
+    #[arg(long)]
+    id: String,
+    /// Attention heads, when the checkpoint has no config.json.
+    #[arg(long)]
+    heads: Option<usize>,
+    /// Pooling recorded with the model.
+    #[arg(long, value_enum, default_value_t = PoolingArg::Cls)]
+    pooling: PoolingArg,
+    /// Shorter side after resizing (default: 256/224 of the crop).
+    #[arg(long)]
+    resize: Option<u32>,
+    /// Side of the centre crop fed to the model.
+    #[arg(long, default_value_t = 224)]
+    crop: u32,
+    /// Per-channel mean and std: ImageNet's, or CLIP's.
+    #[arg(long, value_enum, default_value_t = NormalisationArg::Imagenet)]
+    normalisation: NormalisationArg,
+}
+
+#[derive(Clone, Copy, Debug, clap::ValueEnum)]
+pub enum PoolingArg {
+    Cls,
+    Mean,
+    ClsMean,
+}
+
+#[derive(Clone, Copy, Debug, clap::ValueEnum)]
+pub enum NormalisationArg {
+    /// mean (0.485, 0.456, 0.406), std (0.229, 0.224, 0.225).
+    Imagenet,
+    /// mean (0.4815, 0.4578, 0.4082), std (0.2686, 0.2613, 0.2758).
+    Clip,
 }
 
 #[derive(Args, Debug)]
@@ -286,6 +334,7 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
             let encoder = ctx.encoder()?;
             println!("{}", serde_json::to_string_pretty(encoder.spec())?);
         }
+        Command::Model(ModelCommand::Import(args)) => import_model(&args)?,
         Command::Embed { files } => embed_files(&ctx, &files)?,
         Command::Index(args) => index(&ctx, &args)?,
         Command::Status { errors, output } => status(&ctx, errors, &output)?,
@@ -796,4 +845,45 @@ impl Report for SuspectTable {
             })
             .collect()
     }
+}
+
+fn import_model(args: &ImportArgs) -> Result<()> {
+    let pooling = match args.pooling {
+        PoolingArg::Cls => Pooling::Cls,
+        PoolingArg::Mean => Pooling::Mean,
+        PoolingArg::ClsMean => Pooling::ClsMean,
+    };
+    // Published normalisation constants (ImageNet statistics; CLIP's own), from memory.
+    let (mean, std) = match args.normalisation {
+        NormalisationArg::Imagenet => ([0.485, 0.456, 0.406], [0.229, 0.224, 0.225]),
+        NormalisationArg::Clip => ([0.4815, 0.4578, 0.4082], [0.2686, 0.2613, 0.2758]),
+    };
+    let preprocess = PreprocessSpec {
+        resize_shorter: args
+            .resize
+            .unwrap_or((args.crop as f64 * 256.0 / 224.0).round() as u32),
+        crop: args.crop,
+        mean,
+        std,
+    };
+    let settings = ImportSettings {
+        id: args.id.clone(),
+        pooling,
+        preprocess,
+    };
+    let hints = FamilyHints {
+        num_heads: args.heads,
+        ..FamilyHints::default()
+    };
+    let spec = import_checkpoint(&args.source, &hints, &settings, &args.out)
+        .with_context(|| format!("while importing {}", args.source.display()))?;
+    println!(
+        "imported {} ({:?}, {} layers, dim {}) into {}",
+        spec.id,
+        spec.vit.family,
+        spec.vit.num_layers,
+        spec.vit.hidden_size,
+        args.out.display()
+    );
+    Ok(())
 }

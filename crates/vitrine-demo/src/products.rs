@@ -903,20 +903,30 @@ fn paint_scarf(canvas: &mut Canvas, rng: &mut ChaCha8Rng, stage: &Stage) {
     if rng.random_bool(0.6) {
         // Lying on the table, seen at a grazing angle.
         let angle: f32 = rng.random_range(-0.45..0.45);
+        let (cos, sin) = (angle.cos(), angle.sin().abs());
+        let centre_x = stage.width * rng.random_range(0.42..0.58);
+        let wanted_y = stage.horizon + (stage.height - stage.horizon) * rng.random_range(0.4..0.6);
+        let half_width = half_width * 1.15;
+        let amplitude = half_width * rng.random_range(0.3..0.9);
+        let fringe = half_width * rng.random_range(0.2..0.5);
+        let squash = rng.random_range(0.55..0.8);
+        // Keep the whole scarf in frame: ends inside the sides, lowest fold above the bottom.
+        let sway = amplitude + half_width;
+        let room_x = centre_x.min(stage.width - centre_x) * 0.95;
+        let half_length =
+            (short_side * rng.random_range(0.36..0.46)).min((room_x - sway * sin) / cos - fringe);
+        let reach_down = squash * ((half_length + fringe) * sin + sway * cos);
         let band = Band {
-            centre: (
-                stage.width * rng.random_range(0.42..0.58),
-                stage.horizon + (stage.height - stage.horizon) * rng.random_range(0.4..0.6),
-            ),
-            direction: (angle.cos(), angle.sin()),
-            half_length: short_side * rng.random_range(0.36..0.46),
-            half_width: half_width * 1.15,
-            amplitude: half_width * rng.random_range(0.3..0.9),
+            centre: (centre_x, wanted_y.min(stage.height * 0.97 - reach_down)),
+            direction: (cos, angle.sin()),
+            half_length,
+            half_width,
+            amplitude,
             frequency: TAU / (short_side * rng.random_range(0.45..0.9)),
             phase: rng.random_range(0.0..TAU),
-            fringe: half_width * rng.random_range(0.2..0.5),
+            fringe,
             fringe_at_start: true,
-            squash: rng.random_range(0.55..0.8),
+            squash,
         };
         cloth.paint(canvas, &band, light, (-light.x * 6.0, 5.0), 1.0);
         return;

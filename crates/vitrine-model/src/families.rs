@@ -736,3 +736,41 @@ fn candle_dtype(dtype: Dtype) -> Option<DType> {
 fn unsupported(reason: String) -> ModelError {
     ModelError::UnrecognisedGraph { reason }
 }
+
+/// What to record with an imported checkpoint.
+#[derive(Clone, Debug)]
+pub struct ImportSettings {
+    pub id: String,
+    pub pooling: crate::config::Pooling,
+    pub preprocess: vitrine_imaging::PreprocessSpec,
+}
+
+/// Translates a transformers-layout checkpoint into our model directory
+/// format (`model.json` + canonical `model.safetensors`) in `out_dir`.
+pub fn import_checkpoint(
+    source: &Path,
+    hints: &FamilyHints,
+    settings: &ImportSettings,
+    out_dir: &Path,
+) -> Result<crate::config::ModelSpec, ModelError> {
+    let checkpoint = load_family_checkpoint(source, hints, &Device::Cpu)?;
+    let mut tensors = Vec::with_capacity(checkpoint.tensors.len());
+    for (name, tensor) in checkpoint.tensors {
+        tensors.push(crate::model_dir::NamedTensor {
+            name,
+            shape: tensor.dims().to_vec(),
+            data: tensor.flatten_all()?.to_vec1::<f32>()?,
+        });
+    }
+    tensors.sort_by(|a, b| a.name.cmp(&b.name));
+    let spec = crate::config::ModelSpec {
+        format_version: crate::config::MODEL_FORMAT_VERSION,
+        id: settings.id.clone(),
+        vit: checkpoint.config,
+        pooling: settings.pooling,
+        preprocess: settings.preprocess.clone(),
+        weights_sha256: String::new(),
+        source: format!("imported from {}", source.display()),
+    };
+    crate::model_dir::write_model_dir(out_dir, spec, &tensors)
+}

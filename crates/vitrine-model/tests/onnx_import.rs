@@ -337,3 +337,52 @@ fn real_dinov2_s14_export_matches_the_onnx_package() -> Result<()> {
     assert_eq!(spec.vit.num_registers, 0);
     check_against_probes(&tensors)
 }
+
+#[test]
+fn fused_layer_normalization_supplies_eps() -> Result<()> {
+    // Opset 17+ exports keep LayerNorm as one LayerNormalization node whose
+    // `epsilon` attribute holds the value (ONNX operator specification).
+    let mut export = synthetic_dinov2(1);
+    let graph = export.graph_mut();
+    graph
+        .node
+        .retain(|n| !n.name.starts_with("/backbone/layernorm/"));
+    graph.node.push(vitrine_model::onnx::NodeProto {
+        input: vec!["x".into(), "backbone.layernorm.weight".into()],
+        output: vec!["/backbone/layernorm/LayerNormalization_output_0".into()],
+        name: "/backbone/layernorm/LayerNormalization".into(),
+        op_type: "LayerNormalization".into(),
+        attribute: vec![vitrine_model::onnx::AttributeProto {
+            name: "epsilon".into(),
+            f: 1e-5,
+            r#type: vitrine_model::onnx::ATTRIBUTE_TYPE_FLOAT,
+            ..Default::default()
+        }],
+    });
+    let (_tmp, dir) = import(&export)?;
+    let (spec, _) = load_model_dir(&dir?)?;
+    assert_eq!(spec.vit.layer_norm_eps, 1e-5);
+    Ok(())
+}
+
+#[test]
+fn register_tokens_make_a_registers_model() -> Result<()> {
+    let mut export = synthetic_dinov2(1);
+    let registers: Vec<f32> = (0..4 * HIDDEN).map(|i| i as f32).collect();
+    export
+        .graph_mut()
+        .initializer
+        .push(vitrine_model::onnx::TensorProto {
+            dims: vec![1, 4, HIDDEN as i64],
+            data_type: vitrine_model::onnx::DATA_TYPE_FLOAT,
+            name: "backbone.embeddings.register_tokens".into(),
+            float_data: registers.clone(),
+            ..Default::default()
+        });
+    let (_tmp, dir) = import(&export)?;
+    let (spec, tensors) = load_model_dir(&dir?)?;
+    assert_eq!(spec.vit.family, Family::Dinov2Registers);
+    assert_eq!(spec.vit.num_registers, 4);
+    assert_eq!(flat(&tensors["register_tokens"])?, registers);
+    Ok(())
+}

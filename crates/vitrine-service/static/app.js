@@ -41,6 +41,8 @@
       else if (key === 'dataset') Object.assign(el.dataset, value);
       else if (key.startsWith('on') && typeof value === 'function') el.addEventListener(key.slice(2), value);
       else if (key === 'text') el.textContent = value;
+      // Through the CSSOM, which a Content-Security-Policy without 'unsafe-inline' still allows.
+      else if (key === 'style') el.style.cssText = value;
       else if (value === true) el.setAttribute(key, '');
       else el.setAttribute(key, String(value));
     }
@@ -431,8 +433,10 @@
     return h('div', { class: 'field' }, h('label', { for: id }, labelText), select);
   }
 
-  function splitNames() { return namesOf(pick(state.status, 'splits')); }
-  function labelNames() { return namesOf(pick(state.status, 'labels')); }
+  // The status counts images without a split or label under '(none)': not a value to filter on.
+  const NO_VALUE = '(none)';
+  function splitNames() { return namesOf(pick(state.status, 'splits')).filter((s) => s !== NO_VALUE); }
+  function labelNames() { return namesOf(pick(state.status, 'labels')).filter((l) => l !== NO_VALUE); }
 
   // ------------------------------------------------------ roving focus
 
@@ -528,11 +532,13 @@
     const queryId = params.get('id');
     if (queryId) state.searchFile = null;
 
+    const uploadOff = state.status && state.status.model_loaded === false;
     const fileInput = h('input', { type: 'file', id: 'query-file', accept: 'image/jpeg,image/png,image/webp', class: 'visually-hidden' });
     const dropzone = h('div', { class: 'dropzone', dataset: { testid: 'dropzone' } },
       h('strong', {}, 'Drop an image here'),
       h('p', {}, 'JPEG, PNG or WebP. It is compared with the collection, not added to it.'),
       h('label', { for: 'query-file', class: 'button primary' }, 'Choose an image…'),
+      uploadOff ? h('p', { role: 'note' }, 'The service has not loaded this collection’s model, so uploaded images cannot be compared. Indexed images still can.') : null,
       fileInput);
     const preview = h('div', { class: 'query-preview', hidden: true });
     const filterForm = searchFilters(filters);
@@ -704,7 +710,7 @@
     const buildToolbar = (value) => {
       toolbarSlot.replaceChildren(
         thresholdControl(value, (v) => navigate(hrefWith({ threshold: v.toFixed(3), page: 1 }))),
-        perPageSelect(perPage, [25, 50, 100, 200, 500, 1000]),
+        perPageSelect(perPage, [25, 50, 100, 200, 500]),
         h('span', { class: 'spacer' }),
         ...exportButtons);
     };
@@ -912,10 +918,12 @@
     await fill(ctx, slot, 'Clustering the collection…', async () => {
       const data = await api(collectionPath('/clusters') + queryString(q), { signal: ctx.signal });
       const clusters = listOf(data, 'clusters');
+      if (!q.k && typeof data.n_clusters === 'number') kInput.placeholder = `auto (${data.n_clusters})`;
+      if (!q.seed && data.seed !== undefined) seedInput.placeholder = `default (${data.seed})`;
       announce(`${clusters.length} clusters.`);
       if (!clusters.length) return emptyState('No clusters.', 'The collection needs a few indexed images first.');
       const list = h('ol', { class: 'cluster-grid', dataset: { testid: 'clusters' }, 'aria-label': 'Clusters' },
-        clusters.map((c) => h('li', {}, clusterCard(c, q))));
+        clusters.map((c) => h('li', {}, clusterCard(ctx, c, q))));
       makeReviewList(list);
       return list;
     });
@@ -942,14 +950,45 @@
       h('span', { class: 'share' }, formatPercent(r.share)))));
   }
 
-  function clusterCard(cluster, q) {
+  const PREVIEW_COUNT = 4;
+
+  function previewLinks(members, medoid) {
+    return members.map(imageOf).filter((m) => String(m.id) !== String(medoid.id)).slice(0, PREVIEW_COUNT)
+      .map((m) => h('a', { href: href(`/image/${encodeURIComponent(m.id)}`) }, thumb(m, 96, 'preview-img')));
+  }
+
+  // Clusters whose summary lists no members get their first few fetched
+  // once the card scrolls near the screen, so hundreds of clusters cost
+  // only the requests of the cards actually looked at.
+  let previewObserver = null;
+  function watchForPreview(ctx, card, index, q, medoid) {
+    if (!previewObserver) {
+      previewObserver = new IntersectionObserver((entries) => {
+        for (const entry of entries) {
+          if (!entry.isIntersecting) continue;
+          previewObserver.unobserve(entry.target);
+          entry.target.loadPreview();
+        }
+      }, { rootMargin: '300px' });
+    }
+    card.loadPreview = async () => {
+      try {
+        const data = await api(collectionPath(`/clusters/${encodeURIComponent(index)}`) + queryString(Object.assign({ page: 1, per_page: PREVIEW_COUNT + 1 }, q)), { signal: ctx.signal });
+        card.querySelector('.pictures').append(...previewLinks(listOf(data, 'items', 'members'), medoid));
+      } catch (_) {
+        // The medoid alone still represents the cluster.
+      }
+    };
+    previewObserver.observe(card);
+  }
+
+  function clusterCard(ctx, cluster, q) {
     const index = pick(cluster, 'index', 'id');
     const medoid = imageOf(pick(cluster, 'medoid') || {});
-    const preview = listOf(pick(cluster, 'members_preview', 'preview') || []).map(imageOf)
-      .filter((m) => String(m.id) !== String(medoid.id)).slice(0, 4);
+    const preview = pick(cluster, 'members_preview', 'preview');
     const open = href(`/clusters/${encodeURIComponent(index)}`, q);
     const headingId = `cluster-${index}`;
-    return h('section', { class: 'cluster', 'aria-labelledby': headingId, dataset: { index: String(index) } },
+    const card = h('section', { class: 'cluster', 'aria-labelledby': headingId, dataset: { index: String(index) } },
       h('header', {},
         h('h2', { id: headingId }, `Cluster ${index}`),
         h('span', { class: 'size' }, `${cluster.size} images`)),
@@ -957,11 +996,13 @@
         medoid.id !== undefined
           ? h('a', { class: 'medoid', href: href(`/image/${encodeURIComponent(medoid.id)}`) }, thumb(medoid, THUMB_SIZE, 'medoid-img'), h('span', { class: 'medoid-tag' }, 'medoid'))
           : null,
-        preview.map((m) => h('a', { href: href(`/image/${encodeURIComponent(m.id)}`) }, thumb(m, 96, 'preview-img')))),
+        Array.isArray(preview) ? previewLinks(preview, medoid) : null),
       topLabels(pick(cluster, 'top_labels')),
       splitMix(pick(cluster, 'split_mix')),
       h('p', { class: 'kv' }, `Cohesion ${formatScore(cluster.cohesion)} (mean similarity to the centre)`),
       h('a', { class: 'button', href: open, dataset: { open: String(index) } }, `Open cluster ${index}`));
+    if (!Array.isArray(preview) && cluster.size > 1) watchForPreview(ctx, card, index, q, medoid);
+    return card;
   }
 
   async function renderCluster(ctx) {
@@ -975,8 +1016,12 @@
       viewHead(`Cluster ${arg}`, 'Every member, most central first.'),
       facts, slot);
     await fill(ctx, slot, 'Loading members…', async () => {
-      const data = await api(collectionPath(`/clusters/${encodeURIComponent(arg)}`) + queryString(Object.assign({ page, per_page: perPage }, q)), { signal: ctx.signal });
-      const summary = pick(data, 'cluster', 'summary') || data || {};
+      const [data, overview] = await Promise.all([
+        api(collectionPath(`/clusters/${encodeURIComponent(arg)}`) + queryString(Object.assign({ page, per_page: perPage }, q)), { signal: ctx.signal }),
+        api(collectionPath('/clusters') + queryString(q), { signal: ctx.signal }).catch(() => null),
+      ]);
+      const summary = pick(data, 'cluster', 'summary') ||
+        listOf(overview, 'clusters').find((c) => String(pick(c, 'index', 'id')) === String(arg)) || {};
       const members = listOf(data, 'members', 'images', 'items').map(imageOf);
       const total = pick(data, 'total') !== undefined ? pick(data, 'total') : pick(summary, 'size');
       const parts = [];
@@ -1003,9 +1048,13 @@
     const meta = await api(collectionPath(`/images/${encodeURIComponent(arg)}`), { signal: ctx.signal });
     const img = imageOf(meta);
     const hashes = pick(meta, 'hashes') || {};
-    const hashRows = Array.isArray(hashes)
+    const hashRows = (Array.isArray(hashes)
       ? hashes.map((x) => [pick(x, 'name', 'algorithm', 'kind') || 'hash', pick(x, 'value', 'hex', 'digest')])
-      : Object.entries(hashes);
+      : Object.entries(hashes))
+      .concat([['File hash', meta.content_hash], ['Pixel hash', meta.pixel_hash]].filter(([, v]) => v));
+    const modified = typeof meta.modified_unix_ns === 'number'
+      ? new Date(meta.modified_unix_ns / 1e6).toISOString().replace('T', ' ').replace(/\.\d+Z$/, ' UTC')
+      : undefined;
     const facts = [
       ['Path', img.path],
       ['Root', img.root],
@@ -1013,6 +1062,7 @@
       ['Label', img.label || '(none)'],
       ['Size', img.width && img.height ? `${img.width} × ${img.height} px` : undefined],
       ['File size', formatBytes(img.byte_size)],
+      ['Modified', modified],
       ['Id', String(img.id)],
       ...hashRows.map(([name, value]) => [name, h('code', {}, String(value))]),
     ].filter(([, value]) => value !== undefined && value !== '');
@@ -1042,28 +1092,52 @@
     });
   }
 
-  /** The k-NN label vote for one image, from the service's suggestion list. */
+  // Pages of a label listing scanned for one image before giving up.
+  const LABEL_SCAN_PAGES = 10;
+  const LABEL_PAGE_SIZE = 500;
+
+  /** The entry for `id` in a paged label listing (suggestions or suspects), if any. */
+  async function findInListing(ctx, listing, id) {
+    for (let page = 1; page <= LABEL_SCAN_PAGES; page += 1) {
+      const data = await api(collectionPath(`/labels/${listing}`) + queryString({ id, page, per_page: LABEL_PAGE_SIZE }), { signal: ctx.signal });
+      const items = listOf(data, 'items', listing).map(imageOf);
+      const found = items.find((item) => String(item.id) === String(id));
+      if (found) return { found };
+      const total = pick(data, 'total');
+      if (items.length < LABEL_PAGE_SIZE || (typeof total === 'number' && page * LABEL_PAGE_SIZE >= total)) return {};
+    }
+    return { gaveUp: true };
+  }
+
+  /**
+   * What the labelled neighbours say about one image: a suggestion for an
+   * unlabelled image, or a warning when a labelled image's neighbours disagree.
+   */
   async function labelSuggestion(ctx, img) {
-    const data = await api(collectionPath('/labels/suggestions') + queryString({ id: img.id }), { signal: ctx.signal });
-    const mine = listOf(data, 'suggestions', 'items').map(imageOf).find((s) => String(s.id) === String(img.id)) ||
-      (data && !Array.isArray(data) && String(pick(data, 'id')) === String(img.id) ? data : null);
-    const box = (cls, ...content) => h('div', { class: `suggestion ${cls}`, dataset: { testid: 'suggestion' } }, h('h2', {}, 'Label suggestion'), content);
-    if (!mine) {
-      return box('', h('p', {}, img.label
-        ? `Labelled “${img.label}”; the service has no suggestion for it.`
+    const box = (cls, ...content) => h('div', { class: `suggestion ${cls}`, dataset: { testid: 'suggestion' } },
+      h('h2', {}, 'Label suggestion'), content,
+      h('p', { class: 'kv' }, 'From a similarity-weighted vote of labelled neighbours: a hint to review, not a verdict.'));
+    const listing = img.label ? 'suspects' : 'suggestions';
+    const { found, gaveUp } = await findInListing(ctx, listing, img.id);
+    const suggested = found && pick(found, 'suggested_label');
+    const confidence = found && pick(found, 'confidence');
+    if (img.label) {
+      if (!found) {
+        return box('', h('p', {}, gaveUp
+          ? `Labelled “${img.label}”. The list of disputed labels is too long to search here.`
+          : `Labelled “${img.label}”; its neighbours do not dispute it.`));
+      }
+      return box('disagrees',
+        h('p', {}, `Labelled “${img.label}”, but ${formatPercent(pick(found, 'disagreement'))} of its neighbours' vote disagrees.`),
+        suggested ? h('p', {}, 'They suggest ', h('strong', {}, suggested), ` (${formatPercent(confidence)} of the vote).`) : null);
+    }
+    if (!found || !suggested) {
+      const leading = found && pick(found, 'leading_label');
+      return box('', h('p', {}, leading
+        ? `No suggestion: “${leading}” leads with only ${formatPercent(confidence)} of the vote.`
         : 'No suggestion: the neighbours do not agree enough on a label.'));
     }
-    const suggested = pick(mine, 'suggested_label');
-    const leading = pick(mine, 'leading_label');
-    const confidence = pick(mine, 'confidence');
-    if (!suggested) {
-      return box('', h('p', {}, `The neighbours abstain${leading ? `; “${leading}” leads with ${formatPercent(confidence)} of the vote` : ''}.`));
-    }
-    const disagrees = img.label && img.label !== suggested;
-    return box(disagrees ? 'disagrees' : '',
-      h('p', {}, h('strong', {}, suggested), ` · ${formatPercent(confidence)} of the neighbours' weighted vote`),
-      disagrees ? h('p', {}, `It is labelled “${img.label}”: worth a second look.`) : null,
-      h('p', { class: 'kv' }, 'A suggestion from similar images, not a verdict.'));
+    return box('', h('p', {}, 'Unlabelled. Suggested: ', h('strong', {}, suggested), ` (${formatPercent(confidence)} of the vote).`));
   }
 
   // ------------------------------------------------------------ start

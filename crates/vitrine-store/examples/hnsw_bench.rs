@@ -123,7 +123,12 @@ fn run_hnsw_rs(data: &[f32], queries: &[f32], truth: &[Vec<usize>], params: &Hns
     Run { build_s, sweep }
 }
 
-fn run_hnswlib(python: &str, script: &Path, dir: &Path, params: &HnswParams) -> anyhow::Result<Run> {
+fn run_hnswlib(
+    python: &str,
+    script: &Path,
+    dir: &Path,
+    params: &HnswParams,
+) -> anyhow::Result<Run> {
     let output = Command::new(python)
         .arg(script)
         .arg(dir)
@@ -198,7 +203,12 @@ fn print_report(
         );
     }
     for target in TARGETS {
-        let cheapest = |run: &Run| run.sweep.iter().find(|p| p.recall >= target).map(|p| (p.ef, p.qps));
+        let cheapest = |run: &Run| {
+            run.sweep
+                .iter()
+                .find(|p| p.recall >= target)
+                .map(|p| (p.ef, p.qps))
+        };
         match (cheapest(ours), cheapest(reference)) {
             (Some((ef_a, qps_a)), Some((ef_b, qps_b))) => println!(
                 "recall@{K} >= {target}: hnsw_rs ef {ef_a} at {qps_a:.0} q/s, hnswlib ef {ef_b} \
@@ -227,7 +237,13 @@ fn median(mut values: Vec<f64>) -> f64 {
 }
 
 /// Writes a C-order .npy file (NumPy format version 1.0).
-fn write_npy(path: &Path, descr: &str, rows: usize, cols: usize, body: &[u8]) -> anyhow::Result<()> {
+fn write_npy(
+    path: &Path,
+    descr: &str,
+    rows: usize,
+    cols: usize,
+    body: &[u8],
+) -> anyhow::Result<()> {
     let mut header =
         format!("{{'descr': '{descr}', 'fortran_order': False, 'shape': ({rows}, {cols}), }}");
     // magic (6) + version (2) + header length (2) + header, padded to 64 bytes with '\n' last.

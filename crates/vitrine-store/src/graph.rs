@@ -256,8 +256,7 @@ impl Graph {
                 }
             }
         });
-        self.ids
-            .extend(fresh.iter().map(|(_, id)| *id as ImageId));
+        self.ids.extend(fresh.iter().map(|(_, id)| *id as ImageId));
     }
 
     /// Up to `k` nearest nodes as (id, cosine distance), nearest first.

@@ -82,7 +82,10 @@ impl Store {
             }
             None => {
                 let mut batch = sled::Batch::default();
-                batch.insert(keys::META_FORMAT, encode(&FORMAT_VERSION, keys::META_FORMAT)?);
+                batch.insert(
+                    keys::META_FORMAT,
+                    encode(&FORMAT_VERSION, keys::META_FORMAT)?,
+                );
                 batch.insert(
                     keys::META_FINGERPRINT,
                     encode(fingerprint, keys::META_FINGERPRINT)?,
@@ -170,8 +173,11 @@ impl Store {
         match loaded {
             Some(graph) => {
                 store.dead = graph.ids().difference(&live).copied().collect();
-                let missing: Vec<ImageId> =
-                    live.iter().filter(|id| !graph.contains(**id)).copied().collect();
+                let missing: Vec<ImageId> = live
+                    .iter()
+                    .filter(|id| !graph.contains(**id))
+                    .copied()
+                    .collect();
                 store.graph = graph;
                 let mut vectors = Vec::with_capacity(missing.len());
                 for id in missing {
@@ -241,10 +247,9 @@ impl Store {
         match self.db.get(&key).map_err(self.db_error())? {
             None => Ok(None),
             Some(value) => {
-                let bytes: [u8; 8] = value.as_ref().try_into().map_err(|_| self.corrupt(
-                    &key,
-                    "path index entry is not an image id".into(),
-                ))?;
+                let bytes: [u8; 8] = value.as_ref().try_into().map_err(|_| {
+                    self.corrupt(&key, "path index entry is not an image id".into())
+                })?;
                 Ok(Some(ImageId::from_be_bytes(bytes)))
             }
         }
@@ -395,10 +400,7 @@ impl Store {
             };
             let record_key = keys::record(id);
             batch.insert(&record_key, encode(&record, &record_key)?);
-            batch.insert(
-                keys::path(record.root, &record.rel_path),
-                &id.to_be_bytes(),
-            );
+            batch.insert(keys::path(record.root, &record.rel_path), &id.to_be_bytes());
             batch.insert(&keys::content_hash(&record.content_hash, id)[..], &[]);
             batch.remove(keys::file_error(record.root, &record.rel_path));
             if previous != Some(id) {
@@ -422,8 +424,10 @@ impl Store {
         self.live_count = self.live_count + new_vectors.len() - removed.len();
         self.dead
             .extend(removed.into_iter().filter(|id| self.graph.contains(*id)));
-        let items: Vec<(ImageId, &[f32])> =
-            new_vectors.iter().map(|(id, v)| (*id, v.as_slice())).collect();
+        let items: Vec<(ImageId, &[f32])> = new_vectors
+            .iter()
+            .map(|(id, v)| (*id, v.as_slice()))
+            .collect();
         self.graph.insert(&items);
         Ok(assigned)
     }
@@ -713,13 +717,15 @@ fn read_meta<T: DeserializeOwned>(
 ) -> Result<Option<T>, StoreError> {
     match db.get(key).map_err(database_error(dir))? {
         None => Ok(None),
-        Some(bytes) => postcard::from_bytes(&bytes)
-            .map(Some)
-            .map_err(|error| StoreError::Corrupt {
-                path: dir.to_path_buf(),
-                key: keys::describe(key),
-                reason: error.to_string(),
-            }),
+        Some(bytes) => {
+            postcard::from_bytes(&bytes)
+                .map(Some)
+                .map_err(|error| StoreError::Corrupt {
+                    path: dir.to_path_buf(),
+                    key: keys::describe(key),
+                    reason: error.to_string(),
+                })
+        }
     }
 }
 
@@ -746,8 +752,11 @@ mod tests {
 
     fn rewrite_format(dir: &Path, version: u32) {
         let db = open_db(dir).unwrap();
-        db.insert(keys::META_FORMAT, encode(&version, keys::META_FORMAT).unwrap())
-            .unwrap();
+        db.insert(
+            keys::META_FORMAT,
+            encode(&version, keys::META_FORMAT).unwrap(),
+        )
+        .unwrap();
         db.flush().unwrap();
     }
 

@@ -21,7 +21,10 @@ impl ModelFingerprint {
     pub fn differing_fields(&self, other: &ModelFingerprint) -> String {
         let checks = [
             ("model_id", self.model_id != other.model_id),
-            ("weights_sha256", self.weights_sha256 != other.weights_sha256),
+            (
+                "weights_sha256",
+                self.weights_sha256 != other.weights_sha256,
+            ),
             ("preprocess", self.preprocess != other.preprocess),
             ("pooling", self.pooling != other.pooling),
             ("dim", self.dim != other.dim),

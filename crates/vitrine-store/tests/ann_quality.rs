@@ -31,13 +31,19 @@ fn reloaded_index_recall_at_10_against_exact_search() -> anyhow::Result<()> {
             build_started.elapsed() - built,
             store.index_disk_bytes() / 1_000_000
         );
-        ids.into_iter().enumerate().map(|(row, id)| (id, row)).collect()
+        ids.into_iter()
+            .enumerate()
+            .map(|(row, id)| (id, row))
+            .collect()
     };
 
     let reopen_started = Instant::now();
     let store = Store::open(dir.path())?;
     eprintln!("reopened in {:.1?}", reopen_started.elapsed());
-    assert!(store.index_was_loaded(), "the saved graph should be loaded, not rebuilt");
+    assert!(
+        store.index_was_loaded(),
+        "the saved graph should be loaded, not rebuilt"
+    );
     assert_eq!(store.params(), &HnswParams::default());
 
     let search_started = Instant::now();

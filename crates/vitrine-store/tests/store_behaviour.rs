@@ -36,7 +36,9 @@ fn assert_matches_exact(
     removed: &HashSet<ImageId>,
     queries: &[f32],
 ) {
-    let live_rows: Vec<usize> = (0..ids.len()).filter(|r| !removed.contains(&ids[*r])).collect();
+    let live_rows: Vec<usize> = (0..ids.len())
+        .filter(|r| !removed.contains(&ids[*r]))
+        .collect();
     let live_data: Vec<f32> = live_rows
         .iter()
         .flat_map(|r| data[r * DIM..(r + 1) * DIM].iter().copied())
@@ -185,12 +187,19 @@ fn dump_written_but_not_recorded_is_ignored() {
     drop(store);
     let newer: Vec<String> = dump_files(&live);
     for name in &newer {
-        fs::copy(live.join("hnsw").join(name), crashed.join("hnsw").join(name)).unwrap();
+        fs::copy(
+            live.join("hnsw").join(name),
+            crashed.join("hnsw").join(name),
+        )
+        .unwrap();
     }
     assert_eq!(dump_files(&crashed).len(), 4, "both generations present");
 
     let store = Store::open(&crashed).unwrap();
-    assert!(store.index_was_loaded(), "the recorded generation should load");
+    assert!(
+        store.index_was_loaded(),
+        "the recorded generation should load"
+    );
     assert_eq!(store.len(), 2_000 - removed.len());
     let removed: HashSet<ImageId> = removed.into_iter().collect();
     assert_matches_exact(&store, &data, &ids, &removed, &queries);
@@ -198,10 +207,16 @@ fn dump_written_but_not_recorded_is_ignored() {
     // nearest neighbour.
     for id in &removed {
         let row = ids.iter().position(|x| x == id).unwrap();
-        let hits = store.search(&data[row * DIM..(row + 1) * DIM], K, None).unwrap();
+        let hits = store
+            .search(&data[row * DIM..(row + 1) * DIM], K, None)
+            .unwrap();
         assert!(hits.iter().all(|(hit, _)| !removed.contains(hit)));
     }
-    assert_eq!(dump_files(&crashed).len(), 2, "unrecorded dump deleted on open");
+    assert_eq!(
+        dump_files(&crashed).len(),
+        2,
+        "unrecorded dump deleted on open"
+    );
 }
 
 fn assert_recovers_from_damaged_dump(damage: impl Fn(&Path)) {
@@ -215,7 +230,10 @@ fn assert_recovers_from_damaged_dump(damage: impl Fn(&Path)) {
     damage(&dir.path().join("hnsw"));
 
     let store = Store::open(dir.path()).unwrap();
-    assert!(!store.index_was_loaded(), "a damaged dump must not be loaded");
+    assert!(
+        !store.index_was_loaded(),
+        "a damaged dump must not be loaded"
+    );
     let removed: HashSet<ImageId> = removed.into_iter().collect();
     assert_matches_exact(&store, &data, &ids, &removed, &queries);
     drop(store);
@@ -359,7 +377,10 @@ fn replacing_keeps_the_id_only_for_an_unchanged_embedding() {
         .unwrap();
     assert_ne!(changed[0], ids[0]);
     assert_eq!(store.record(ids[0]).unwrap(), None);
-    assert_eq!(store.id_for_path(0, &record(0).rel_path).unwrap(), Some(changed[0]));
+    assert_eq!(
+        store.id_for_path(0, &record(0).rel_path).unwrap(),
+        Some(changed[0])
+    );
     assert_eq!(store.len(), 3);
     let hits = store.search(&row(1), 3, None).unwrap();
     assert!(hits.iter().all(|(id, _)| *id != ids[0]));
@@ -434,7 +455,10 @@ fn invalid_changes_are_rejected_without_partial_effects() {
         upserts: vec![good.clone(), short],
         ..ChangeSet::default()
     });
-    assert!(matches!(result, Err(StoreError::DimensionMismatch { expected: DIM, .. })));
+    assert!(matches!(
+        result,
+        Err(StoreError::DimensionMismatch { expected: DIM, .. })
+    ));
     assert_eq!(store.id_for_path(0, &record(10).rel_path).unwrap(), None);
     assert_eq!(store.len(), 2);
 
@@ -455,13 +479,19 @@ fn invalid_changes_are_rejected_without_partial_effects() {
         upserts: vec![elsewhere],
         ..ChangeSet::default()
     });
-    assert!(matches!(result, Err(StoreError::UnknownRoot { root: 9, .. })));
+    assert!(matches!(
+        result,
+        Err(StoreError::UnknownRoot { root: 9, .. })
+    ));
 
     let result = store.commit(ChangeSet {
         upserts: vec![good.clone(), good],
         ..ChangeSet::default()
     });
-    assert!(matches!(result, Err(StoreError::DuplicateInChangeSet { .. })));
+    assert!(matches!(
+        result,
+        Err(StoreError::DuplicateInChangeSet { .. })
+    ));
     assert_eq!(store.len(), 2);
 }
 
@@ -478,8 +508,14 @@ fn model_mismatch_names_both_models() {
     };
     let message = error.to_string();
     assert!(matches!(error, StoreError::ModelMismatch { .. }));
-    assert!(message.contains("test-vit-small (weights 01234567…, cls, dim 32)"), "{message}");
-    assert!(message.contains("test-vit-base (weights 01234567…, mean, dim 32)"), "{message}");
+    assert!(
+        message.contains("test-vit-small (weights 01234567…, cls, dim 32)"),
+        "{message}"
+    );
+    assert!(
+        message.contains("test-vit-base (weights 01234567…, mean, dim 32)"),
+        "{message}"
+    );
     assert!(message.contains("model_id, pooling"), "{message}");
 }
 
@@ -490,7 +526,10 @@ fn opening_a_missing_store_fails_cleanly() {
         Store::open(&dir.path().join("nothing here")),
         Err(StoreError::NotAStore { .. })
     ));
-    assert!(matches!(Store::open(dir.path()), Err(StoreError::NotAStore { .. })));
+    assert!(matches!(
+        Store::open(dir.path()),
+        Err(StoreError::NotAStore { .. })
+    ));
 }
 
 #[test]

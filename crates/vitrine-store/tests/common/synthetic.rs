@@ -25,7 +25,11 @@ impl ClusteredSource {
             })
             .collect();
         let noise = Normal::new(0.0, noise_std).expect("noise_std must be finite and >= 0");
-        ClusteredSource { dim, centres, noise }
+        ClusteredSource {
+            dim,
+            centres,
+            noise,
+        }
     }
 
     /// `n` points, row-major `n x dim`.

@@ -1,0 +1,281 @@
+//! End-to-end indexing through the real `vitrine` binary, a real sled store
+//! and real image files. A tiny DINOv2-layout model (the transformers-made
+//! fixture of the model crate) keeps forward passes cheap: these tests are
+//! about the store and the ingest pipeline, not embedding quality.
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output, Stdio};
+use std::time::Duration;
+
+use image::{ImageBuffer, Rgb};
+use serde_json::Value;
+
+const BIN: &str = env!("CARGO_BIN_EXE_vitrine");
+
+struct Fixture {
+    dir: tempfile::TempDir,
+}
+
+impl Fixture {
+    fn new() -> Self {
+        let fixture = Fixture {
+            dir: tempfile::tempdir().unwrap(),
+        };
+        let checkpoint = Path::new(env!("CARGO_MANIFEST_DIR"))
+            .join("../vitrine-model/tests/fixtures/families/dinov2");
+        let out = fixture.run(&[
+            "model",
+            "import",
+            checkpoint.to_str().unwrap(),
+            "--out",
+            fixture.model_dir().to_str().unwrap(),
+            "--id",
+            "tiny-dinov2",
+            "--crop",
+            "32",
+            "--resize",
+            "36",
+        ]);
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        fixture
+    }
+
+    fn model_dir(&self) -> PathBuf {
+        self.dir.path().join("model")
+    }
+
+    fn store(&self) -> PathBuf {
+        self.dir.path().join("store")
+    }
+
+    fn images(&self) -> PathBuf {
+        self.dir.path().join("images")
+    }
+
+    fn command(&self, args: &[&str]) -> Command {
+        let mut command = Command::new(BIN);
+        command
+            .arg("--store")
+            .arg(self.store())
+            .arg("--model")
+            .arg(self.model_dir())
+            .args(args)
+            .env("VITRINE_CONFIG", self.dir.path().join("vitrine.toml"));
+        command
+    }
+
+    fn run(&self, args: &[&str]) -> Output {
+        self.command(args).output().unwrap()
+    }
+
+    fn index(&self) -> String {
+        let out = self.run(&["index", self.images().to_str().unwrap()]);
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        String::from_utf8(out.stdout).unwrap()
+    }
+
+    fn status(&self) -> Value {
+        let out = self.run(&["status", "--errors", "--format", "json"]);
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        serde_json::from_slice(&out.stdout).unwrap()
+    }
+}
+
+/// A distinct picture for every seed: stripes, a disc and a colour ramp.
+fn write_image(path: &Path, seed: u32) {
+    std::fs::create_dir_all(path.parent().unwrap()).unwrap();
+    let (w, h) = (48 + seed % 17, 40 + seed % 13);
+    let image = ImageBuffer::from_fn(w, h, |x, y| {
+        let stripe = ((x * (1 + seed % 5) + y * (seed % 3)) / 4 % 2) as u8 * 90;
+        let dx = x as i32 - (seed % w) as i32;
+        let dy = y as i32 - (seed * 7 % h) as i32;
+        let disc = if dx * dx + dy * dy < 120 { 120 } else { 0 };
+        Rgb([
+            stripe.wrapping_add((seed * 37) as u8),
+            disc + (x * 3) as u8,
+            (y * 5) as u8 ^ (seed * 11) as u8,
+        ])
+    });
+    image.save(path).unwrap();
+}
+
+fn count(line: &str, what: &str) -> usize {
+    let pattern = format!(" {what}");
+    let end = line.find(&pattern).unwrap_or_else(|| panic!("no `{what}` in {line}"));
+    line[..end]
+        .rsplit(|c: char| !c.is_ascii_digit())
+        .next()
+        .unwrap()
+        .parse()
+        .unwrap()
+}
+
+#[test]
+fn incremental_reindex_counts_exactly() {
+    let fx = Fixture::new();
+    for i in 0..12 {
+        let split = ["train", "val", "test"][i % 3];
+        write_image(&fx.images().join(format!("{split}/cls{}/img{i}.png", i % 2)), i as u32);
+    }
+    let first = fx.index();
+    assert_eq!(count(&first, "new"), 12, "{first}");
+    assert_eq!(fx.status()["images"], 12);
+
+    // Add two, change one, delete one, rename one.
+    write_image(&fx.images().join("train/cls0/added1.png"), 100);
+    write_image(&fx.images().join("val/cls1/added2.png"), 101);
+    std::thread::sleep(Duration::from_millis(20));
+    write_image(&fx.images().join("train/cls0/img0.png"), 102);
+    std::fs::remove_file(fx.images().join("val/cls1/img1.png")).unwrap();
+    std::fs::rename(
+        fx.images().join("test/cls0/img2.png"),
+        fx.images().join("test/cls0/renamed.png"),
+    )
+    .unwrap();
+
+    let second = fx.index();
+    assert_eq!(count(&second, "new"), 3, "{second}"); // two added, one renamed
+    assert_eq!(count(&second, "changed"), 1, "{second}");
+    assert_eq!(count(&second, "unchanged"), 9, "{second}");
+    assert_eq!(count(&second, "removed"), 2, "{second}"); // deleted, old name
+    assert_eq!(count(&second, "failed"), 0, "{second}");
+    // The renamed file's bytes were already embedded.
+    assert!(second.contains("(1 embedded by reuse"), "{second}");
+    let status = fx.status();
+    assert_eq!(status["images"], 13);
+    assert_eq!(status["splits"]["train"], 5);
+
+    let third = fx.index();
+    assert_eq!(count(&third, "new"), 0);
+    assert_eq!(count(&third, "unchanged"), 13);
+}
+
+#[test]
+fn bad_files_are_recorded_and_do_not_stop_the_run() {
+    let fx = Fixture::new();
+    let dir = fx.images().join("train/mixed");
+    write_image(&dir.join("good1.png"), 1);
+    write_image(&dir.join("good2.png"), 2);
+    std::fs::write(dir.join("empty.jpg"), b"").unwrap();
+    std::fs::write(dir.join("notes.jpg"), b"this is a text file, not a picture\n").unwrap();
+    let mut jpeg = Vec::new();
+    image::DynamicImage::ImageRgb8(ImageBuffer::from_fn(64, 64, |x, y| Rgb([x as u8, y as u8, 9])))
+        .write_to(&mut std::io::Cursor::new(&mut jpeg), image::ImageFormat::Jpeg)
+        .unwrap();
+    std::fs::write(dir.join("truncated.jpg"), &jpeg[..jpeg.len() / 2]).unwrap();
+    std::fs::write(dir.join("bomb.png"), png_header_claiming(30_000, 30_000)).unwrap();
+
+    let summary = fx.index();
+    assert_eq!(count(&summary, "new"), 2, "{summary}");
+    assert_eq!(count(&summary, "failed"), 4, "{summary}");
+    let status = fx.status();
+    assert_eq!(status["images"], 2);
+    let reasons: BTreeMap<String, String> = status["error_list"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| {
+            (
+                e["path"].as_str().unwrap().rsplit('/').next().unwrap().to_owned(),
+                e["reason"].as_str().unwrap().to_owned(),
+            )
+        })
+        .collect();
+    assert!(reasons["empty.jpg"].contains("empty"), "{reasons:?}");
+    assert!(reasons["notes.jpg"].contains("not a recognised image"), "{reasons:?}");
+    assert!(reasons["truncated.jpg"].contains("truncated") || reasons["truncated.jpg"].contains("corrupt"), "{reasons:?}");
+    assert!(reasons["bomb.png"].contains("over the limit"), "{reasons:?}");
+    // Fixing a file clears its error on the next run.
+    std::fs::remove_file(dir.join("notes.jpg")).unwrap();
+    fx.index();
+    assert_eq!(fx.status()["errors"], 3);
+}
+
+/// A PNG signature and IHDR chunk declaring `width × height`, then nothing:
+/// a decompression bomb must be refused from its header alone.
+fn png_header_claiming(width: u32, height: u32) -> Vec<u8> {
+    let mut ihdr = Vec::new();
+    ihdr.extend_from_slice(b"IHDR");
+    ihdr.extend_from_slice(&width.to_be_bytes());
+    ihdr.extend_from_slice(&height.to_be_bytes());
+    ihdr.extend_from_slice(&[8, 2, 0, 0, 0]);
+    let crc = crc32(&ihdr);
+    let mut png = b"\x89PNG\r\n\x1a\n".to_vec();
+    png.extend_from_slice(&13u32.to_be_bytes());
+    png.extend_from_slice(&ihdr);
+    png.extend_from_slice(&crc.to_be_bytes());
+    png
+}
+
+fn crc32(bytes: &[u8]) -> u32 {
+    let mut crc = 0xffff_ffffu32;
+    for &byte in bytes {
+        crc ^= u32::from(byte);
+        for _ in 0..8 {
+            crc = if crc & 1 != 0 { (crc >> 1) ^ 0xedb8_8320 } else { crc >> 1 };
+        }
+    }
+    !crc
+}
+
+/// Everything a finished store says about its images, for comparison.
+fn store_contents(fx: &Fixture) -> Vec<(String, String)> {
+    let out = fx.run(&["duplicates", "--format", "json", "--threshold", "1.0"]);
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    let status = fx.status();
+    let mut contents: Vec<(String, String)> = status["labels"]
+        .as_object()
+        .unwrap()
+        .iter()
+        .map(|(k, v)| (k.clone(), v.to_string()))
+        .collect();
+    contents.push(("images".into(), status["images"].to_string()));
+    contents.push(("errors".into(), status["errors"].to_string()));
+    contents
+}
+
+#[test]
+fn killed_runs_resume_to_the_same_store_as_a_clean_run() {
+    let fx = Fixture::new();
+    // Small commits so that kills land both between and inside commits.
+    std::fs::write(
+        fx.dir.path().join("vitrine.toml"),
+        "[index]\ncommit_every = 8\nbatch_size = 4\n",
+    )
+    .unwrap();
+    let n_images = 300;
+    for i in 0..n_images {
+        let split = ["train", "val", "test"][i % 3];
+        write_image(&fx.images().join(format!("{split}/c{}/p{i:03}.png", i % 4)), i as u32);
+    }
+    std::fs::write(fx.images().join("train/c0/broken.png"), b"nope").unwrap();
+
+    for delay_ms in [150u64, 400, 700, 1000, 1500] {
+        let mut child = fx
+            .command(&["index", fx.images().to_str().unwrap()])
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .unwrap();
+        std::thread::sleep(Duration::from_millis(delay_ms));
+        let _ = child.kill(); // SIGKILL on Unix
+        let _ = child.wait();
+        // The store opens after every kill.
+        let out = fx.run(&["status", "--format", "json"]);
+        assert!(
+            out.status.success(),
+            "store did not open after a kill at {delay_ms} ms: {}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
+    let last = fx.index();
+    assert_eq!(count(&last, "failed"), 1, "{last}");
+    let resumed = store_contents(&fx);
+
+    let clean = Fixture::new();
+    std::fs::rename(fx.images(), clean.images()).unwrap();
+    clean.index();
+    assert_eq!(resumed, store_contents(&clean));
+    assert_eq!(fx.status()["images"], n_images);
+}

@@ -1,0 +1,211 @@
+// End-to-end check of the page served by `vitrine serve`, in real headless
+// Chromium (Debian's package) driven by playwright-core.
+//
+// It builds nothing: the binary comes from $VITRINE_BIN (default
+// target/debug/vitrine) and the default model must already be fetched
+// (`vitrine model fetch`). The expected answers come from
+// demo-images/ground-truth.json, written by the demo generator when it planted
+// the copies, not from vitrine's own code.
+//
+// Run: npm ci --prefix tests/e2e && node --test tests/e2e/
+
+import { after, before, test } from 'node:test';
+import assert from 'node:assert/strict';
+import fs from 'node:fs';
+import os from 'node:os';
+import path from 'node:path';
+
+import {
+  artifactsDir,
+  assertLoopbackOnly,
+  indexCollection,
+  launchBrowser,
+  repoRoot,
+  startServer,
+  vitrineBin,
+} from './harness.mjs';
+
+const demoDir = path.join(repoRoot, 'demo-images');
+const truth = JSON.parse(fs.readFileSync(path.join(demoDir, 'ground-truth.json'), 'utf8'));
+
+let store;
+let server;
+let browser;
+let page;
+const requests = [];
+const pageErrors = [];
+
+/** A planted near-duplicate whose original is in no other planted group, so its nearest other image is unambiguous. */
+function searchCase() {
+  const elsewhere = new Set([
+    ...truth.exact_duplicates.flatMap((g) => g.files),
+    ...truth.pixel_identical_reencodings.flatMap((g) => g.files),
+    ...truth.leaks.flatMap((l) => [l.leaked, l.train_counterpart]),
+  ]);
+  const candidates = truth.near_duplicates.filter((n) => !elsewhere.has(n.original) && !elsewhere.has(n.edited));
+  // A re-encoded JPEG is the mildest planted edit.
+  return candidates.find((n) => n.edit === 'jpeg-reencode') || candidates[0];
+}
+
+async function shot(name) {
+  await page.screenshot({ path: path.join(artifactsDir, `${name}.png`), fullPage: false });
+}
+
+async function paths(selector) {
+  return page.$$eval(selector, (els) => els.map((el) => el.dataset.path));
+}
+
+before(async () => {
+  fs.mkdirSync(artifactsDir, { recursive: true });
+  store = fs.mkdtempSync(path.join(os.tmpdir(), 'vitrine-e2e-store-'));
+  await indexCollection(vitrineBin, store, demoDir);
+  server = await startServer(vitrineBin, store);
+  browser = await launchBrowser();
+  page = browser.page;
+  page.on('request', (request) => requests.push(request.url()));
+  page.on('pageerror', (err) => pageErrors.push(err.message));
+}, { timeout: 30 * 60 * 1000 });
+
+after(async () => {
+  if (browser) await browser.close();
+  if (server) await server.stop();
+  if (store) fs.rmSync(store, { recursive: true, force: true });
+});
+
+test('search: an uploaded original finds its planted near-duplicate first', async () => {
+  const planted = searchCase();
+  assert.ok(planted, 'ground truth lists a near-duplicate to search for');
+  await page.goto(`${server.url}/#/search`);
+  await page.waitForSelector('[data-testid="browse"] .card');
+  await page.setInputFiles('#query-file', path.join(demoDir, planted.original));
+  await page.waitForSelector('[data-testid="hits"] .card');
+  const hits = await paths('[data-testid="hits"] .card');
+  const others = hits.filter((p) => p !== planted.original);
+  // Ground truth: `edited` was made from `original` by the demo generator.
+  assert.equal(others[0], planted.edited, `first result other than the query itself; got ${hits.slice(0, 5).join(', ')}`);
+  const firstScore = await page.$eval('[data-testid="hits"] .card .score', (el) => el.textContent);
+  assert.match(firstScore, /\d\.\d{3}/, 'each hit shows its similarity');
+  const alt = await page.$eval('[data-testid="hits"] .card img', (el) => el.alt);
+  assert.match(alt, /split .+, label .+/, 'thumbnails carry path, split and label as alt text');
+  await shot('search');
+});
+
+test('duplicates: a planted exact-copy group is shown with one suggested keeper', async () => {
+  await page.goto(`${server.url}/#/duplicates?per_page=500`);
+  await page.waitForSelector('[data-testid="groups"] .group');
+  const groups = await page.$$eval('[data-testid="groups"] .group', (els) => els.map((el) => ({
+    paths: Array.from(el.querySelectorAll('.card')).map((c) => c.dataset.path),
+    keepers: el.querySelectorAll('.card.is-keeper').length,
+    tier: el.dataset.tier,
+  })));
+  // Byte-identical copies and pixel-identical re-encodings group at any threshold.
+  for (const planted of [...truth.exact_duplicates, ...truth.pixel_identical_reencodings]) {
+    const shown = groups.find((g) => planted.files.every((f) => g.paths.includes(f)));
+    assert.ok(shown, `planted group ${planted.files.join(' + ')} is shown`);
+    assert.equal(shown.keepers, 1, 'exactly one member is marked as the suggested keeper');
+  }
+
+  // Keyboard review: j moves to the next group, k back.
+  await page.focus('[data-testid="groups"] .group');
+  await page.keyboard.press('j');
+  assert.equal(await page.evaluate(() => document.activeElement.getAttribute('aria-labelledby')), 'group-2');
+  await page.keyboard.press('k');
+  assert.equal(await page.evaluate(() => document.activeElement.getAttribute('aria-labelledby')), 'group-1');
+
+  // Export of the current view, as the browser downloads it.
+  const [download] = await Promise.all([page.waitForEvent('download'), page.click('[data-export="csv"]')]);
+  const csv = fs.readFileSync(await download.path(), 'utf8');
+  assert.ok(csv.startsWith('group,group_tier,id,path'), 'CSV has its header');
+  for (const file of truth.exact_duplicates[0].files) assert.ok(csv.includes(file), `CSV lists ${file}`);
+
+  await page.goto(`${server.url}/#/duplicates`);
+  await page.waitForSelector('[data-testid="groups"] .group');
+  await shot('duplicates');
+});
+
+test('duplicates: the threshold control re-queries the groups', async () => {
+  const planted = searchCase();
+  const groupPaths = () => page.$$eval('[data-testid="groups"] .group', (els) => els.map((el) =>
+    Array.from(el.querySelectorAll('.card')).map((c) => c.dataset.path)));
+  const holdsPair = (groups) => groups.some((g) => g.includes(planted.original) && g.includes(planted.edited));
+
+  await page.goto(`${server.url}/#/duplicates?threshold=0.900&per_page=500`);
+  await page.waitForSelector('[data-testid="groups"] .group');
+  const loose = await groupPaths();
+  assert.ok(holdsPair(loose), `at 0.900 the planted ${planted.edit} pair forms a group`);
+
+  // The slider moved to its top end with the keyboard: only identical embeddings remain near-duplicates.
+  await page.focus('#threshold');
+  await page.keyboard.press('End');
+  await page.waitForFunction(() => location.hash.includes('threshold=1.000'));
+  await page.waitForSelector('[data-testid="groups"] .group');
+  const strict = await groupPaths();
+  // Ground truth: a re-encoded or edited copy differs in pixels, so its embedding is not identical.
+  assert.ok(!holdsPair(strict), 'at 1.000 the edited pair is no longer grouped');
+  for (const group of truth.exact_duplicates) {
+    assert.ok(strict.some((g) => group.files.every((f) => g.includes(f))), `byte-identical ${group.files[0]} stays grouped at any threshold`);
+  }
+});
+
+test('leakage: a planted leak is shown as a pair with the per-split summary', async () => {
+  await page.goto(`${server.url}/#/leakage?per_page=200`);
+  await page.waitForSelector('[data-testid="leaks"] .review-item');
+  const pairs = await page.$$eval('[data-testid="leaks"] .review-item', (els) => els.map((el) => [el.dataset.path, el.dataset.counterpart]));
+  const found = truth.leaks.filter((l) => pairs.some(([a, b]) => a === l.leaked && b === l.train_counterpart));
+  assert.ok(found.length >= 1, `at least one planted leak is listed (pairs: ${pairs.length})`);
+  const exact = truth.leaks.filter((l) => l.kind === 'exact-copy');
+  for (const leak of exact) {
+    assert.ok(found.includes(leak), `byte-identical leak ${leak.leaked} is listed`);
+  }
+  const summarySplits = await page.$$eval('[data-testid="leak-summary"] tbody th', (els) => els.map((el) => el.textContent));
+  for (const leak of found) assert.ok(summarySplits.includes(leak.leaked.split('/')[0]), 'the summary has a row for the leaked split');
+  await page.goto(`${server.url}/#/leakage`);
+  await page.waitForSelector('[data-testid="leaks"] .review-item');
+  await shot('leakage');
+});
+
+test('clusters: the overview lists clusters and one opens with its members', async () => {
+  await page.goto(`${server.url}/#/clusters`);
+  await page.waitForSelector('[data-testid="clusters"] .cluster');
+  const clusters = await page.$$eval('[data-testid="clusters"] .cluster', (els) => els.map((el) => ({
+    index: el.dataset.index,
+    size: Number(el.querySelector('.size').textContent.match(/\d+/)[0]),
+  })));
+  const total = clusters.reduce((sum, c) => sum + c.size, 0);
+  const indexed = truth.files.length - truth.broken.length;
+  assert.equal(total, indexed, 'every indexed image is in exactly one cluster');
+  await shot('clusters');
+
+  const first = clusters[0];
+  await page.click(`[data-open="${first.index}"]`);
+  await page.waitForSelector('[data-testid="cluster-members"] .card');
+  const members = await page.$$eval('[data-testid="cluster-members"] .card', (els) => els.length);
+  assert.equal(members, Math.min(first.size, 60), 'the opened cluster shows its members (first page)');
+  await shot('cluster');
+});
+
+test('image detail: metadata, neighbours and label suggestion', async () => {
+  const planted = searchCase();
+  await page.goto(`${server.url}/#/search`);
+  await page.fill('#filter-prefix', planted.original);
+  await page.press('#filter-prefix', 'Enter');
+  await page.waitForSelector(`[data-testid="browse"] .card[data-path="${planted.original}"]`);
+  await page.click(`[data-testid="browse"] .card[data-path="${planted.original}"] .thumb-link`);
+  await page.waitForSelector('[data-testid="neighbours"] .card');
+  const heading = await page.textContent('h1');
+  assert.equal(heading, planted.original);
+  const neighbours = await paths('[data-testid="neighbours"] .card');
+  assert.equal(neighbours[0], planted.edited, 'the nearest neighbour of the original is its planted edit');
+  await page.waitForSelector('[data-testid="suggestion"]');
+  await shot('image');
+});
+
+test('the page raised no script error', () => {
+  assert.deepEqual(pageErrors, []);
+});
+
+test('no request from the page leaves the loopback address', () => {
+  assert.ok(requests.length > 20, `requests were recorded (${requests.length})`);
+  assertLoopbackOnly(requests);
+});
+
