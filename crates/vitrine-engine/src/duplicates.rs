@@ -5,8 +5,16 @@
 //! Near-duplicate candidates come from each image's k nearest neighbours in
 //! the HNSW index (O(n·k) work, never all pairs); groups are the connected
 //! components of those edges (union-find). Only a report: nothing is deleted.
+//!
+//! With verification (see [`crate::verify`]), near candidates come from a
+//! lower cosine, [`DuplicateOptions::candidate_threshold`], and each candidate
+//! pair is kept only if the finer check confirms it: that removes look-alike
+//! low-texture pairs above the threshold and recovers crops and rotations
+//! below it. Pairs whose files cannot be read are judged on the threshold
+//! alone, and the result says so.
 
-use std::collections::HashMap;
+use std::collections::{BTreeSet, HashMap};
+use std::path::PathBuf;
 
 use rayon::prelude::*;
 use serde::Serialize;
@@ -15,6 +23,7 @@ use vitrine_store::{ImageId, Store};
 use crate::analytics::grouping::{group_by_similarity, SimilarityEdge};
 use crate::catalog::{Catalog, ImageRef};
 use crate::error::EngineError;
+use crate::verify::{PairCheck, PairVerifier};
 
 /// How strongly two images are the same picture.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize)]
@@ -34,6 +43,10 @@ pub struct DuplicateOptions {
     pub near_duplicate_threshold: f32,
     /// Neighbours examined per image when looking for near-duplicates.
     pub neighbours_per_image: usize,
+    /// Confirm near candidates with the finer check when a verifier is given.
+    pub verify: bool,
+    /// With verification, pairs from this cosine up are candidates.
+    pub candidate_threshold: f32,
 }
 
 impl Default for DuplicateOptions {
@@ -41,6 +54,8 @@ impl Default for DuplicateOptions {
         Self {
             near_duplicate_threshold: DEFAULT_NEAR_DUPLICATE_THRESHOLD,
             neighbours_per_image: 10,
+            verify: true,
+            candidate_threshold: DEFAULT_CANDIDATE_THRESHOLD,
         }
     }
 }
@@ -48,6 +63,54 @@ impl Default for DuplicateOptions {
 /// The default near-duplicate threshold for the default model's class-token
 /// embeddings; see DEVELOPERS.md ("Threshold") for the measurement behind it.
 pub const DEFAULT_NEAR_DUPLICATE_THRESHOLD: f32 = 0.90;
+
+/// With verification, the cosine from which pairs are candidates.
+pub const DEFAULT_CANDIDATE_THRESHOLD: f32 = 0.60;
+
+/// How a near pair was judged.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+#[serde(tag = "status", rename_all = "snake_case")]
+pub enum Verification {
+    /// The finer check confirmed it; `score` is its aligned pixel correlation.
+    Confirmed { score: f32 },
+    /// Accepted on the cosine threshold alone: verification was off, no
+    /// model was given to run it, or a file could not be read.
+    ThresholdOnly,
+}
+
+impl Verification {
+    fn strength(&self) -> f32 {
+        match self {
+            Verification::Confirmed { score } => 1.0 + score,
+            Verification::ThresholdOnly => 0.0,
+        }
+    }
+}
+
+/// What verification did in one query.
+#[derive(Clone, Debug, Default, Serialize)]
+pub struct VerificationSummary {
+    /// Whether near pairs went through the finer check.
+    pub applied: bool,
+    /// Why it was not applied, or only in part.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub note: Option<String>,
+    pub candidate_pairs: usize,
+    pub confirmed: usize,
+    /// Confirmed pairs whose cosine was below the near-duplicate threshold.
+    pub recovered_below_threshold: usize,
+    /// Pairs at or above the threshold that the check rejected.
+    pub rejected_above_threshold: usize,
+    /// Pairs with an unreadable file, judged on the threshold alone.
+    pub unavailable: usize,
+}
+
+/// Duplicate groups and how their near pairs were judged.
+#[derive(Clone, Debug, Serialize)]
+pub struct DuplicateReport {
+    pub groups: Vec<DuplicateGroup>,
+    pub verification: VerificationSummary,
+}
 
 /// One member of a duplicate group.
 #[derive(Clone, Debug, Serialize)]
@@ -59,6 +122,9 @@ pub struct GroupMember {
     /// Cosine similarity to the keeper.
     pub similarity: f32,
     pub keeper: bool,
+    /// For near-tier members: how the near link that brought it in was judged.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub verification: Option<Verification>,
     pub width: u32,
     pub height: u32,
     pub byte_size: u64,
@@ -118,13 +184,97 @@ fn exact_edges<K: std::hash::Hash + Eq>(
     edges
 }
 
-/// Near-duplicate edges from each row's nearest neighbours.
-fn near_edges(
+/// A near pair before judgement.
+#[derive(Clone, Copy)]
+struct Candidate {
+    first: usize,
+    second: usize,
+    similarity: f32,
+}
+
+/// The cosine from which neighbours are candidates.
+fn candidate_floor(options: &DuplicateOptions, verifier: Option<&PairVerifier>) -> f32 {
+    if options.verify && verifier.is_some() {
+        options.candidate_threshold.min(options.near_duplicate_threshold)
+    } else {
+        options.near_duplicate_threshold
+    }
+}
+
+/// Judges candidates: `Some` for those accepted, with how.
+fn judge(
+    catalog: &Catalog,
+    options: &DuplicateOptions,
+    verifier: Option<&PairVerifier>,
+    candidates: &[Candidate],
+) -> Result<(Vec<Option<Verification>>, VerificationSummary), EngineError> {
+    let threshold = options.near_duplicate_threshold;
+    let by_threshold = |c: &Candidate| (c.similarity >= threshold).then_some(Verification::ThresholdOnly);
+    let mut summary = VerificationSummary {
+        candidate_pairs: candidates.len(),
+        ..VerificationSummary::default()
+    };
+    let verifier = match (options.verify, verifier) {
+        (true, Some(verifier)) => verifier,
+        (verify, _) => {
+            if verify {
+                summary.note = Some(
+                    "no model was given to verify with: near pairs judged on the cosine \
+                     threshold alone"
+                        .into(),
+                );
+            }
+            return Ok((candidates.iter().map(by_threshold).collect(), summary));
+        }
+    };
+    summary.applied = true;
+    let path_of = |row: usize| catalog.absolute_path(catalog.ids[row]);
+    let rows: BTreeSet<usize> = candidates.iter().flat_map(|c| [c.first, c.second]).collect();
+    let paths: Vec<PathBuf> = rows.into_iter().filter_map(path_of).collect();
+    verifier.prepare(&paths)?;
+    let checks: Vec<Option<PairCheck>> = candidates
+        .par_iter()
+        .map(|c| {
+            let (a, b) = (path_of(c.first)?, path_of(c.second)?);
+            verifier.check(&a, &b).ok()
+        })
+        .collect();
+    let mut verdicts = Vec::with_capacity(candidates.len());
+    for (candidate, check) in candidates.iter().zip(checks) {
+        let above = candidate.similarity >= threshold;
+        verdicts.push(match check {
+            Some(check) if check.confirmed => {
+                summary.confirmed += 1;
+                summary.recovered_below_threshold += usize::from(!above);
+                Some(Verification::Confirmed { score: check.score })
+            }
+            Some(_) => {
+                summary.rejected_above_threshold += usize::from(above);
+                None
+            }
+            None => {
+                summary.unavailable += 1;
+                by_threshold(candidate)
+            }
+        });
+    }
+    if summary.unavailable > 0 {
+        summary.note = Some(format!(
+            "{} pairs had a file that could not be read: judged on the cosine threshold alone",
+            summary.unavailable
+        ));
+    }
+    Ok((verdicts, summary))
+}
+
+/// Near-duplicate candidates from each row's nearest neighbours.
+fn near_candidates(
     store: &Store,
     catalog: &Catalog,
     options: &DuplicateOptions,
-) -> Result<Vec<SimilarityEdge<usize>>, EngineError> {
-    let per_row: Vec<Result<Vec<SimilarityEdge<usize>>, EngineError>> = (0..catalog.len())
+    floor: f32,
+) -> Result<Vec<Candidate>, EngineError> {
+    let per_row: Vec<Result<Vec<Candidate>, EngineError>> = (0..catalog.len())
         .into_par_iter()
         .map(|row| {
             let hits = store.search(
@@ -134,10 +284,12 @@ fn near_edges(
             )?;
             Ok(hits
                 .into_iter()
-                .filter(|&(_, similarity)| similarity >= options.near_duplicate_threshold)
+                .filter(|&(_, similarity)| similarity >= floor)
                 .filter_map(|(id, similarity)| {
                     let other = catalog.row(id)?;
-                    (other > row).then_some(SimilarityEdge {
+                    // Exact copies are linked by their hashes already.
+                    let exact = tier_between(catalog, row, other) != DuplicateTier::Near;
+                    (other > row && !exact).then_some(Candidate {
                         first: row,
                         second: other,
                         similarity,
@@ -146,19 +298,31 @@ fn near_edges(
                 .collect())
         })
         .collect();
-    let mut edges = Vec::new();
-    for row_edges in per_row {
-        edges.extend(row_edges?);
+    let mut candidates = Vec::new();
+    for row_candidates in per_row {
+        candidates.extend(row_candidates?);
     }
-    Ok(edges)
+    Ok(candidates)
 }
 
-/// Every group of duplicates in the collection, largest first.
+/// Every group of duplicates in the collection, largest first, with near
+/// pairs judged on the cosine threshold alone.
 pub fn find_duplicate_groups(
     store: &Store,
     catalog: &Catalog,
     options: &DuplicateOptions,
 ) -> Result<Vec<DuplicateGroup>, EngineError> {
+    Ok(find_duplicates(store, catalog, options, None)?.groups)
+}
+
+/// Every group of duplicates in the collection, largest first; near pairs
+/// are verified when `options.verify` is set and a verifier is given.
+pub fn find_duplicates(
+    store: &Store,
+    catalog: &Catalog,
+    options: &DuplicateOptions,
+    verifier: Option<&PairVerifier>,
+) -> Result<DuplicateReport, EngineError> {
     let mut edges = exact_edges(
         catalog
             .records
@@ -173,27 +337,54 @@ pub fn find_duplicate_groups(
             .enumerate()
             .map(|(row, r)| (r.pixel_hash, row)),
     ));
-    edges.extend(near_edges(store, catalog, options)?);
-    let components = group_by_similarity(edges, options.near_duplicate_threshold.min(1.0))
+    let floor = candidate_floor(options, verifier);
+    let candidates = near_candidates(store, catalog, options, floor)?;
+    let (verdicts, verification) = judge(catalog, options, verifier, &candidates)?;
+    let mut verification_of: HashMap<usize, Verification> = HashMap::new();
+    for (candidate, verdict) in candidates.iter().zip(verdicts) {
+        let Some(verdict) = verdict else { continue };
+        for row in [candidate.first, candidate.second] {
+            let best = verification_of.entry(row).or_insert(verdict);
+            if verdict.strength() > best.strength() {
+                *best = verdict;
+            }
+        }
+        edges.push(SimilarityEdge {
+            first: candidate.first,
+            second: candidate.second,
+            similarity: candidate.similarity,
+        });
+    }
+    // Every edge left has been accepted: group them all.
+    let components = group_by_similarity(edges, f32::NEG_INFINITY)
         .map_err(|e| EngineError::InvalidArgument(e.to_string()))?;
-    Ok(components
-        .into_iter()
-        .map(|rows| build_group(catalog, rows))
-        .collect())
+    Ok(DuplicateReport {
+        groups: components
+            .into_iter()
+            .map(|rows| build_group(catalog, rows, &verification_of))
+            .collect(),
+        verification,
+    })
 }
 
-fn build_group(catalog: &Catalog, mut rows: Vec<usize>) -> DuplicateGroup {
+fn build_group(
+    catalog: &Catalog,
+    mut rows: Vec<usize>,
+    verification_of: &HashMap<usize, Verification>,
+) -> DuplicateGroup {
     rows.sort_by(|&a, &b| keeper_order(catalog, a, b));
     let keeper = rows[0];
     let mut members: Vec<GroupMember> = rows
         .iter()
         .map(|&row| {
             let record = &catalog.records[row];
+            let tier = tier_between(catalog, keeper, row);
             GroupMember {
                 image: catalog.image_ref(row),
-                tier: tier_between(catalog, keeper, row),
+                tier,
                 similarity: catalog.similarity(keeper, row),
                 keeper: row == keeper,
+                verification: verification_of.get(&row).copied(),
                 width: record.width,
                 height: record.height,
                 byte_size: record.byte_size,
@@ -218,6 +409,9 @@ pub struct Leak {
     pub counterpart: ImageRef,
     pub tier: DuplicateTier,
     pub similarity: f32,
+    /// For near-tier leaks: how the pair was judged.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub verification: Option<Verification>,
 }
 
 /// Leak counts of one evaluated split.
@@ -234,6 +428,7 @@ pub struct LeakReport {
     pub reference_split: String,
     pub summary: Vec<SplitLeakSummary>,
     pub leaks: Vec<Leak>,
+    pub verification: VerificationSummary,
 }
 
 /// Which splits to check against which.
@@ -257,10 +452,25 @@ impl Default for LeakOptions {
 
 /// Every image of the evaluated splits with a duplicate-tier match in the
 /// reference split, with a per-split summary.
+/// Every image of the evaluated splits with a duplicate-tier match in the
+/// reference split, with near pairs judged on the cosine threshold alone.
 pub fn find_leaks(
     store: &Store,
     catalog: &Catalog,
     options: &LeakOptions,
+) -> Result<LeakReport, EngineError> {
+    find_leaks_verified(store, catalog, options, None)
+}
+
+/// As [`find_leaks`], verifying near pairs when `options.duplicates.verify`
+/// is set and a verifier is given: each image's reference neighbours from
+/// the candidate threshold up are checked in order of similarity and the
+/// first accepted one is its counterpart.
+pub fn find_leaks_verified(
+    store: &Store,
+    catalog: &Catalog,
+    options: &LeakOptions,
+    verifier: Option<&PairVerifier>,
 ) -> Result<LeakReport, EngineError> {
     let reference = options.reference_split.as_str();
     let split_of = |row: usize| catalog.records[row].split.as_deref();
@@ -296,7 +506,17 @@ pub fn find_leaks(
     let rows: Vec<usize> = (0..catalog.len())
         .filter(|&row| split_of(row).is_some_and(|s| evaluated.iter().any(|e| e == s)))
         .collect();
-    let found: Vec<Result<Option<Leak>, EngineError>> = rows
+    let duplicates = &options.duplicates;
+    let floor = candidate_floor(duplicates, verifier);
+    let leak = |row: usize, other: usize, tier, similarity, verification| Leak {
+        image: catalog.image_ref(row),
+        counterpart: catalog.image_ref(other),
+        tier,
+        similarity,
+        verification,
+    };
+    // Exact matches need no judgement; the others become near candidates.
+    let found: Vec<Result<Result<Leak, Vec<Candidate>>, EngineError>> = rows
         .par_iter()
         .map(|&row| {
             let record = &catalog.records[row];
@@ -308,25 +528,51 @@ pub fn find_leaks(
                         .get(&record.pixel_hash)
                         .map(|&other| (other, DuplicateTier::Pixels))
                 });
-            let matched = match exact {
-                Some((other, tier)) => Some((other, tier, catalog.similarity(row, other))),
-                None => store
-                    .search(catalog.embedding_at(row), 1, Some(&in_reference))?
-                    .into_iter()
-                    .find(|&(_, s)| s >= options.duplicates.near_duplicate_threshold)
-                    .and_then(|(id, s)| Some((catalog.row(id)?, DuplicateTier::Near, s))),
+            if let Some((other, tier)) = exact {
+                return Ok(Ok(leak(row, other, tier, catalog.similarity(row, other), None)));
+            }
+            let depth = if floor < duplicates.near_duplicate_threshold {
+                duplicates.neighbours_per_image.max(1)
+            } else {
+                1
             };
-            Ok(matched.map(|(other, tier, similarity)| Leak {
-                image: catalog.image_ref(row),
-                counterpart: catalog.image_ref(other),
-                tier,
-                similarity,
-            }))
+            Ok(Err(store
+                .search(catalog.embedding_at(row), depth, Some(&in_reference))?
+                .into_iter()
+                .filter(|&(_, similarity)| similarity >= floor)
+                .filter_map(|(id, similarity)| {
+                    Some(Candidate {
+                        first: row,
+                        second: catalog.row(id)?,
+                        similarity,
+                    })
+                })
+                .collect()))
         })
         .collect();
     let mut leaks = Vec::new();
-    for leak in found {
-        leaks.extend(leak?);
+    let mut candidates = Vec::new();
+    for outcome in found {
+        match outcome? {
+            Ok(exact) => leaks.push(exact),
+            Err(near) => candidates.extend(near),
+        }
+    }
+    let (verdicts, verification) = judge(catalog, duplicates, verifier, &candidates)?;
+    // Candidates are grouped by row in decreasing similarity: the first
+    // accepted one of each row is its counterpart.
+    let mut last_row = None;
+    for (candidate, verdict) in candidates.iter().zip(verdicts) {
+        if let (Some(verdict), true) = (verdict, last_row != Some(candidate.first)) {
+            last_row = Some(candidate.first);
+            leaks.push(leak(
+                candidate.first,
+                candidate.second,
+                DuplicateTier::Near,
+                candidate.similarity,
+                Some(verdict),
+            ));
+        }
     }
     let summary = evaluated
         .iter()
@@ -355,5 +601,6 @@ pub fn find_leaks(
         reference_split: options.reference_split.clone(),
         summary,
         leaks,
+        verification,
     })
 }

@@ -4,6 +4,7 @@
 //! Knows nothing of HTTP or command-line parsing.
 
 pub mod analytics;
+pub mod calibrate;
 pub mod catalog;
 pub mod clusters;
 pub mod duplicates;
@@ -12,6 +13,7 @@ pub mod ingest;
 pub mod labels;
 pub mod neighbours;
 pub mod splits;
+pub mod verify;
 pub mod walk;
 
 pub use error::EngineError;

@@ -1,10 +1,10 @@
 //! Decode + preprocess throughput on camera-sized JPEGs, with and without
 //! reduced-scale (DCT) decoding, next to Pillow doing the same work.
 //!
-//!     cargo run --release -p vitrine-imaging --example decode_bench [-- ROUNDS]
+//!     cargo run --release -p vitrine-imaging --example decode_bench [-- ROUNDS [WIDTHxHEIGHT]]
 //!
 //! The JPEGs are made here: photos from the test fixtures upscaled to
-//! 2304x1728 (4 MP) with a little deterministic grain so they compress like
+//! 2304x1728 (4 MP) by default, with a little deterministic grain so they compress like
 //! camera output rather than like smooth upscales. Pillow runs through
 //! examples/decode_bench_pillow.py with the Python in $VITRINE_PYTHON
 //! (default `python3`); if it cannot run, its rows say so.
@@ -18,8 +18,7 @@ use anyhow::{Context, Result};
 use image::RgbImage;
 use vitrine_imaging::{decode_path, preprocess, DecodeOptions, PreprocessSpec};
 
-const WIDTH: u32 = 2304;
-const HEIGHT: u32 = 1728;
+const DEFAULT_SIZE: (u32, u32) = (2304, 1728);
 const SOURCES: [&str; 4] = [
     "astronaut_q90.jpg",
     "coffee_300x200.png",
@@ -48,7 +47,7 @@ fn add_grain(image: &mut RgbImage, seed: u32) {
     }
 }
 
-fn make_camera_jpegs(dir: &Path) -> Result<Vec<PathBuf>> {
+fn make_camera_jpegs(dir: &Path, (width, height): (u32, u32)) -> Result<Vec<PathBuf>> {
     let fixtures = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/fixtures");
     let mut paths = Vec::new();
     for (index, source) in SOURCES.iter().enumerate() {
@@ -57,8 +56,8 @@ fn make_camera_jpegs(dir: &Path) -> Result<Vec<PathBuf>> {
             .into_rgb8();
         let mut large = image::imageops::resize(
             &photo,
-            WIDTH,
-            HEIGHT,
+            width,
+            height,
             image::imageops::FilterType::CatmullRom,
         );
         add_grain(&mut large, index as u32 + 1);
@@ -75,22 +74,63 @@ fn median(mut values: Vec<f64>) -> f64 {
     values[values.len() / 2]
 }
 
-/// Images per second over `rounds` passes through all files (median pass).
-fn measure(paths: &[PathBuf], opts: &DecodeOptions, rounds: usize) -> Result<(f64, u8)> {
+struct Measurement {
+    images_per_second: f64,
+    decode_ms: f64,
+    preprocess_ms: f64,
+    reduced_scale: u8,
+}
+
+/// Median pass over all files, `rounds` passes; the per-stage times are the
+/// medians of the per-pass averages.
+fn measure(paths: &[PathBuf], opts: &DecodeOptions, rounds: usize) -> Result<Measurement> {
     let spec = default_spec();
-    let mut rates = Vec::new();
-    let mut scale = 1;
+    let (mut rates, mut decode_ms, mut preprocess_ms) = (Vec::new(), Vec::new(), Vec::new());
+    let mut reduced_scale = 1;
     for _ in 0..rounds {
-        let start = Instant::now();
+        let (mut decode_s, mut preprocess_s) = (0.0, 0.0);
         for path in paths {
+            let start = Instant::now();
             let decoded = decode_path(path, opts)?;
-            scale = decoded.reduced_scale;
+            let decoded_at = Instant::now();
             let prepared = preprocess(&decoded.rgb, &spec)?;
             std::hint::black_box(prepared);
+            decode_s += (decoded_at - start).as_secs_f64();
+            preprocess_s += decoded_at.elapsed().as_secs_f64();
+            reduced_scale = decoded.reduced_scale;
         }
-        rates.push(paths.len() as f64 / start.elapsed().as_secs_f64());
+        let n = paths.len() as f64;
+        rates.push(n / (decode_s + preprocess_s));
+        decode_ms.push(decode_s * 1e3 / n);
+        preprocess_ms.push(preprocess_s * 1e3 / n);
     }
-    Ok((median(rates), scale))
+    Ok(Measurement {
+        images_per_second: median(rates),
+        decode_ms: median(decode_ms),
+        preprocess_ms: median(preprocess_ms),
+        reduced_scale,
+    })
+}
+
+/// Decode-only time per image (median pass) for jpeg-decoder at a given DCT
+/// scale, to show where the reduced path pays for its slower entropy decoder.
+fn jpeg_decoder_ms(files: &[Vec<u8>], reduction: u16, rounds: usize) -> Result<f64> {
+    let mut per_image_ms = Vec::new();
+    for _ in 0..rounds {
+        let start = Instant::now();
+        for bytes in files {
+            let mut decoder = jpeg_decoder::Decoder::new(bytes.as_slice());
+            decoder.read_info()?;
+            let info = decoder.info().context("jpeg without a frame")?;
+            decoder.scale(
+                info.width.div_ceil(reduction),
+                info.height.div_ceil(reduction),
+            )?;
+            std::hint::black_box(decoder.decode()?);
+        }
+        per_image_ms.push(start.elapsed().as_secs_f64() * 1e3 / files.len() as f64);
+    }
+    Ok(median(per_image_ms))
 }
 
 /// Runs the Pillow counterpart; returns (full, draft) images per second.
@@ -125,8 +165,17 @@ fn main() -> Result<()> {
         Some(arg) => arg.parse().context("ROUNDS must be a number")?,
         None => 5,
     };
+    let size = match std::env::args().nth(2) {
+        Some(arg) => {
+            let (w, h) = arg
+                .split_once('x')
+                .context("size must look like 4000x3000")?;
+            (w.parse()?, h.parse()?)
+        }
+        None => DEFAULT_SIZE,
+    };
     let dir = tempfile::tempdir()?;
-    let paths = make_camera_jpegs(dir.path())?;
+    let paths = make_camera_jpegs(dir.path(), size)?;
     let spec = default_spec();
 
     let full = DecodeOptions::default();
@@ -134,26 +183,65 @@ fn main() -> Result<()> {
         target_shorter_side: Some(spec.resize_shorter),
         ..DecodeOptions::default()
     };
-    let (full_rate, _) = measure(&paths, &full, rounds)?;
-    let (reduced_rate, scale) = measure(&paths, &reduced, rounds)?;
+    let full_decode = measure(&paths, &full, rounds)?;
+    let reduced_decode = measure(&paths, &reduced, rounds)?;
     let pillow = measure_pillow(dir.path(), rounds);
 
     println!(
-        "decode + preprocess ({} JPEGs of {WIDTH}x{HEIGHT}, resize {} crop {}, 1 thread, median of {rounds} rounds)",
+        "decode + preprocess ({} JPEGs of {}x{}, resize {} crop {}, 1 thread, median of {rounds} rounds)",
         paths.len(),
+        size.0,
+        size.1,
         spec.resize_shorter,
         spec.crop
     );
-    println!("| pipeline                                  | images/s |");
-    println!("|-------------------------------------------|---------:|");
-    println!("| vitrine, full decode (zune-jpeg)          | {full_rate:8.1} |");
-    println!("| vitrine, 1/{scale} DCT decode (jpeg-decoder)     | {reduced_rate:8.1} |");
+    println!("| pipeline                                | images/s | decode ms | preprocess ms |");
+    println!("|-----------------------------------------|---------:|----------:|--------------:|");
+    for (label, m) in [
+        ("vitrine, full decode (zune-jpeg)".to_string(), &full_decode),
+        (
+            format!(
+                "vitrine, 1/{} DCT decode (jpeg-decoder)",
+                reduced_decode.reduced_scale
+            ),
+            &reduced_decode,
+        ),
+    ] {
+        println!(
+            "| {label:<39} | {:8.1} | {:9.1} | {:13.1} |",
+            m.images_per_second, m.decode_ms, m.preprocess_ms
+        );
+    }
     match pillow {
         Ok((pillow_full, pillow_draft)) => {
-            println!("| Pillow, full decode + resize              | {pillow_full:8.1} |");
-            println!("| Pillow, draft() + resize                  | {pillow_draft:8.1} |");
+            println!(
+                "| {:<39} | {pillow_full:8.1} | {:>9} | {:>13} |",
+                "Pillow, full decode + resize", "-", "-"
+            );
+            println!(
+                "| {:<39} | {pillow_draft:8.1} | {:>9} | {:>13} |",
+                "Pillow, draft() + resize", "-", "-"
+            );
         }
         Err(err) => println!("| Pillow: not measured ({err:#})"),
+    }
+
+    let files = paths
+        .iter()
+        .map(std::fs::read)
+        .collect::<std::io::Result<Vec<_>>>()?;
+    println!();
+    println!(
+        "JPEG decode only, jpeg-decoder by DCT scale (zune-jpeg full decode above: {:.1} ms)",
+        full_decode.decode_ms
+    );
+    println!("| scale | decode ms |");
+    println!("|-------|----------:|");
+    for reduction in [1u16, 2, 4, 8] {
+        println!(
+            "| 1/{reduction}   | {:9.1} |",
+            jpeg_decoder_ms(&files, reduction, rounds)?
+        );
     }
     Ok(())
 }

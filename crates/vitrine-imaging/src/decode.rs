@@ -19,6 +19,13 @@ use crate::ImagingError;
 /// Bytes per pixel of the widest layout a decoder may produce (16-bit RGBA);
 /// used to size the decoder's allocation budget from the pixel limit.
 const WIDEST_PIXEL_BYTES: u64 = 8;
+/// The reduced-scale path is taken only from this DCT reduction on. Its
+/// decoder (`jpeg-decoder`) spends most of its time in entropy decoding, which
+/// no scale saves, and is slower at it than the full-size decoder
+/// (`zune-jpeg`): in examples/decode_bench.rs a 1/2 decode of a 4 MP JPEG
+/// took longer than a full decode, while 1/4 of a 12 MP one was clearly
+/// faster end to end.
+const MIN_WORTHWHILE_REDUCTION: u8 = 4;
 /// Headroom for decoder state beyond the output buffer (tables, line buffers).
 const DECODER_OVERHEAD_BYTES: u64 = 64 << 20;
 
@@ -29,8 +36,9 @@ pub struct DecodeOptions {
     pub max_pixels: u64,
     /// Files larger than this are rejected before they are read.
     pub max_file_bytes: u64,
-    /// The shorter side the caller will resize to. When set, large JPEGs are
-    /// decoded at a reduced DCT scale (see [`dct_reduction`]).
+    /// The shorter side the caller will resize to. When set, JPEGs at least
+    /// 8x larger than it on the shorter side are decoded at a reduced DCT
+    /// scale of 1/4 or 1/8 (see [`dct_reduction`]; 1/2 is not worth it).
     pub target_shorter_side: Option<u32>,
 }
 
@@ -321,8 +329,9 @@ fn jpeg_ends_early(bytes: &[u8]) -> bool {
 }
 
 /// Decodes a JPEG at a reduced DCT scale with `jpeg-decoder`. Returns `None`
-/// when no reduction applies (or the file uses a coding the reduced path does
-/// not handle), so the caller falls back to a full decode.
+/// when no worthwhile reduction applies (see [`MIN_WORTHWHILE_REDUCTION`]) or
+/// the file uses a coding the reduced path does not handle, so the caller
+/// falls back to a full decode.
 fn decode_jpeg_reduced(
     bytes: &[u8],
     opts: &DecodeOptions,
@@ -340,8 +349,9 @@ fn decode_jpeg_reduced(
     {
         return Ok(None);
     }
-    let Some(reduction) = dct_reduction(width.min(height), target_shorter_side) else {
-        return Ok(None);
+    let reduction = match dct_reduction(width.min(height), target_shorter_side) {
+        Some(reduction) if reduction >= MIN_WORTHWHILE_REDUCTION => reduction,
+        _ => return Ok(None),
     };
     let requested = |side: u32| -> u16 {
         // Sides come from a u16 header field, so the reduced side fits too.

@@ -29,6 +29,10 @@ const PARALLEL_INSERT_MIN: usize = 256;
 /// meets itself (its dot product can come out as 1.0000001), so a query equal to a
 /// stored embedding would panic. The clamp also maps NaN to 0, keeping the graph's own
 /// `dist >= 0` assertions true.
+///
+/// hnsw_rs records the distance's type name (`vitrine_store::graph::CosineDistance`) in
+/// each dump and refuses to reload a dump under another name: moving or renaming this
+/// type makes existing dumps unloadable, and stores then rebuild their graph once.
 #[derive(Default, Clone, Copy)]
 pub struct CosineDistance;
 

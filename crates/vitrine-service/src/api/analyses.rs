@@ -278,7 +278,7 @@ pub async fn leaks(
     query: web::Query<LeakParams>,
 ) -> Result<HttpResponse, ApiError> {
     let collection = state.collection(&path)?;
-    let duplicates = duplicate_options(&state, query.threshold)?;
+    let near = duplicate_options(&state, query.threshold)?;
     let window = PageWindow::new(query.page, query.per_page, &state.settings)?;
     let query = query.into_inner();
     let mut evaluated_splits: Vec<String> = query
@@ -295,7 +295,7 @@ pub async fn leaks(
         reference_split: query
             .against
             .unwrap_or_else(|| state.reference_split.clone()),
-        duplicates,
+        duplicates: near,
     };
     let threshold = options.duplicates.near_duplicate_threshold;
     let key = (

@@ -325,12 +325,12 @@ fn upload_folder(folder: &str, params: &UploadParams) -> Result<PathBuf, ApiErro
 }
 
 /// A safe file name from the client's, with the extension of the detected format.
-fn file_name_for(upload: &UploadedFile, index: usize) -> String {
-    let extension = image::guess_format(&upload.bytes)
+fn file_name_for(file: &UploadedFile, index: usize) -> String {
+    let extension = image::guess_format(&file.bytes)
         .ok()
         .and_then(|f| f.extensions_str().first().copied())
         .unwrap_or("img");
-    let stem: String = upload
+    let stem: String = file
         .file_name
         .as_deref()
         .and_then(|n| Path::new(n).file_stem())

@@ -1,0 +1,548 @@
+//! A second, finer test for near-duplicate candidates.
+//!
+//! One global cosine over-matches pictures with little texture (gradients,
+//! flat designs, skies: their embeddings all look alike) and under-matches
+//! crops and rotations. The check here looks at both images again:
+//!
+//! 1. **Correspondences**: the patch tokens of the two images are matched
+//!    by mutual nearest neighbours (cosine).
+//! 2. **Geometry**: a similarity transform (scale, rotation, translation)
+//!    is fitted to the matches with RANSAC over two-match samples, followed
+//!    by a least-squares refit on the inliers. Crops, resizes, borders and
+//!    small rotations are all such transforms.
+//! 3. **Pixels**: the second image's grey thumbnail is resampled into the
+//!    first one's frame through that transform, and the two are compared by
+//!    normalised cross-correlation on their overlap, after removing the best
+//!    planar fit from each. Removing the plane is what rejects look-alike
+//!    gradients and skies: a linear ramp carries no evidence of being the
+//!    same picture, only the structure left on top of it does.
+//!
+//! The score is the correlation of step 3 (0 without a usable transform).
+//! Each image's evidence is computed once, so the cost is one forward pass
+//! per image involved in a candidate pair plus a small comparison per pair.
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex};
+
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use rayon::prelude::*;
+use serde::Serialize;
+use vitrine_imaging::{decode_path, preprocess, DecodeOptions, PreparedImage};
+use vitrine_model::encoder::{Encoder, PatchTokens};
+
+use crate::error::EngineError;
+
+/// What one image contributes to a pair check.
+pub struct ImageEvidence {
+    tokens: PatchTokens,
+    /// Grey levels of the model's input crop, `THUMB_SIDE²`, row-major.
+    thumbnail: Vec<f32>,
+    /// Side of the model's input crop, in pixels.
+    crop_side: f32,
+}
+
+/// Thumbnail side: the 224-pixel input crop averaged over 4x4 blocks.
+const THUMB_SIDE: usize = 56;
+
+/// Knobs of the check.
+#[derive(Clone, Debug)]
+pub struct VerifyOptions {
+    /// Mutual nearest neighbours weaker than this are not correspondences.
+    pub min_token_similarity: f32,
+    /// A correspondence fits the transform within this many patch widths.
+    pub inlier_tolerance_patches: f32,
+    /// Scale and rotation a transform may have.
+    pub max_scale_ratio: f32,
+    pub max_rotation_degrees: f32,
+    /// Pixel correlation (after plane removal) at which a pair is confirmed.
+    pub min_correlation: f32,
+}
+
+impl Default for VerifyOptions {
+    fn default() -> Self {
+        Self {
+            min_token_similarity: 0.5,
+            inlier_tolerance_patches: 1.0,
+            max_scale_ratio: 3.0,
+            max_rotation_degrees: 25.0,
+            min_correlation: 0.5,
+        }
+    }
+}
+
+/// The outcome of checking one pair.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+pub struct PairCheck {
+    pub confirmed: bool,
+    /// Normalised correlation of the aligned, plane-removed thumbnails.
+    pub score: f32,
+    /// Mutual-nearest-neighbour token matches and those fitting the transform.
+    pub matches: usize,
+    pub inliers: usize,
+}
+
+/// `x' = scale·R(angle)·x + shift`, in pixels of the model's input crop.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct SimilarityTransform {
+    /// `scale·cos(angle)` and `scale·sin(angle)`.
+    pub a: f32,
+    pub b: f32,
+    pub tx: f32,
+    pub ty: f32,
+}
+
+impl SimilarityTransform {
+    fn apply(&self, [x, y]: [f32; 2]) -> [f32; 2] {
+        [
+            self.a * x - self.b * y + self.tx,
+            self.b * x + self.a * y + self.ty,
+        ]
+    }
+
+    fn scale(&self) -> f32 {
+        self.a.hypot(self.b)
+    }
+
+    fn rotation_degrees(&self) -> f32 {
+        self.b.atan2(self.a).to_degrees()
+    }
+
+    /// From two point correspondences.
+    fn through(p: [[f32; 2]; 2], q: [[f32; 2]; 2]) -> Option<Self> {
+        let dp = [p[1][0] - p[0][0], p[1][1] - p[0][1]];
+        let dq = [q[1][0] - q[0][0], q[1][1] - q[0][1]];
+        let norm = dp[0] * dp[0] + dp[1] * dp[1];
+        if norm < 1e-6 {
+            return None;
+        }
+        let a = (dq[0] * dp[0] + dq[1] * dp[1]) / norm;
+        let b = (dq[1] * dp[0] - dq[0] * dp[1]) / norm;
+        Some(Self {
+            a,
+            b,
+            tx: q[0][0] - (a * p[0][0] - b * p[0][1]),
+            ty: q[0][1] - (b * p[0][0] + a * p[0][1]),
+        })
+    }
+
+    /// Least-squares fit to many correspondences (closed form for
+    /// similarity transforms).
+    fn fit(pairs: &[([f32; 2], [f32; 2])]) -> Option<Self> {
+        let n = pairs.len() as f32;
+        if pairs.len() < 2 {
+            return None;
+        }
+        let mean = |pick: fn(&([f32; 2], [f32; 2])) -> [f32; 2]| {
+            let sum = pairs.iter().map(pick).fold([0.0, 0.0], |s, v| [s[0] + v[0], s[1] + v[1]]);
+            [sum[0] / n, sum[1] / n]
+        };
+        let (mp, mq) = (mean(|pair| pair.0), mean(|pair| pair.1));
+        let (mut dot, mut cross, mut norm) = (0.0, 0.0, 0.0);
+        for (p, q) in pairs {
+            let (px, py) = (p[0] - mp[0], p[1] - mp[1]);
+            let (qx, qy) = (q[0] - mq[0], q[1] - mq[1]);
+            dot += px * qx + py * qy;
+            cross += px * qy - py * qx;
+            norm += px * px + py * py;
+        }
+        if norm < 1e-6 {
+            return None;
+        }
+        let (a, b) = (dot / norm, cross / norm);
+        Some(Self {
+            a,
+            b,
+            tx: mq[0] - (a * mp[0] - b * mp[1]),
+            ty: mq[1] - (b * mp[0] + a * mp[1]),
+        })
+    }
+}
+
+impl ImageEvidence {
+    /// Evidence of prepared images (the model's input), one forward pass.
+    pub fn of_prepared(
+        encoder: &Encoder,
+        prepared: &[PreparedImage],
+    ) -> Result<Vec<ImageEvidence>, EngineError> {
+        let spec = &encoder.spec().preprocess;
+        let outputs = encoder.embed_with_patches(prepared)?;
+        Ok(outputs
+            .into_iter()
+            .zip(prepared)
+            .map(|((_, tokens), image)| ImageEvidence {
+                thumbnail: grey_thumbnail(image, &spec.mean, &spec.std),
+                crop_side: image.width as f32,
+                tokens,
+            })
+            .collect())
+    }
+
+    /// Centre of patch `index` in crop pixels.
+    fn patch_centre(&self, index: usize) -> [f32; 2] {
+        let side = self.crop_side / self.tokens.cols as f32;
+        let (row, col) = (index / self.tokens.cols, index % self.tokens.cols);
+        [(col as f32 + 0.5) * side, (row as f32 + 0.5) * side]
+    }
+
+    fn token(&self, index: usize) -> &[f32] {
+        &self.tokens.normalised[index * self.tokens.dim..(index + 1) * self.tokens.dim]
+    }
+
+    fn patch_count(&self) -> usize {
+        self.tokens.rows * self.tokens.cols
+    }
+}
+
+/// De-normalises the planar input and averages 4x4 blocks of luma.
+fn grey_thumbnail(image: &PreparedImage, mean: &[f32; 3], std: &[f32; 3]) -> Vec<f32> {
+    let (width, height) = (image.width as usize, image.height as usize);
+    let plane = width * height;
+    let block = (width / THUMB_SIDE).max(1);
+    let weights = [0.299, 0.587, 0.114];
+    let mut thumb = vec![0.0f32; THUMB_SIDE * THUMB_SIDE];
+    for y in 0..(THUMB_SIDE * block).min(height) {
+        for x in 0..(THUMB_SIDE * block).min(width) {
+            let luma: f32 = (0..3)
+                .map(|c| weights[c] * (image.chw[c * plane + y * width + x] * std[c] + mean[c]))
+                .sum();
+            thumb[(y / block) * THUMB_SIDE + x / block] += luma;
+        }
+    }
+    let area = (block * block) as f32;
+    thumb.iter_mut().for_each(|v| *v /= area);
+    thumb
+}
+
+/// Pairs `(index in a, index in b)` that are each other's nearest token.
+fn mutual_nearest(a: &ImageEvidence, b: &ImageEvidence, min_similarity: f32) -> Vec<(usize, usize)> {
+    let (na, nb) = (a.patch_count(), b.patch_count());
+    let mut best_for_a = vec![(usize::MAX, f32::NEG_INFINITY); na];
+    let mut best_for_b = vec![(usize::MAX, f32::NEG_INFINITY); nb];
+    for i in 0..na {
+        let ta = a.token(i);
+        for (j, best_b) in best_for_b.iter_mut().enumerate() {
+            let s = crate::catalog::dot(ta, b.token(j));
+            if s > best_for_a[i].1 {
+                best_for_a[i] = (j, s);
+            }
+            if s > best_b.1 {
+                *best_b = (i, s);
+            }
+        }
+    }
+    best_for_a
+        .iter()
+        .enumerate()
+        .filter(|&(i, &(j, s))| s >= min_similarity && best_for_b[j].0 == i)
+        .map(|(i, &(j, _))| (i, j))
+        .collect()
+}
+
+/// RANSAC draws over match pairs (or every pair when there are fewer).
+const RANSAC_DRAWS: usize = 400;
+
+/// Fits a plausible similarity transform from `a`'s crop to `b`'s crop.
+fn fit_transform(
+    a: &ImageEvidence,
+    b: &ImageEvidence,
+    matches: &[(usize, usize)],
+    options: &VerifyOptions,
+) -> Option<(SimilarityTransform, usize)> {
+    let points: Vec<([f32; 2], [f32; 2])> = matches
+        .iter()
+        .map(|&(i, j)| (a.patch_centre(i), b.patch_centre(j)))
+        .collect();
+    let patch_side = a.crop_side / a.tokens.cols as f32;
+    let tolerance = options.inlier_tolerance_patches * patch_side;
+    let plausible = |t: &SimilarityTransform| {
+        let scale = t.scale();
+        scale <= options.max_scale_ratio
+            && scale >= 1.0 / options.max_scale_ratio
+            && t.rotation_degrees().abs() <= options.max_rotation_degrees
+    };
+    let inliers_of = |t: &SimilarityTransform| -> Vec<([f32; 2], [f32; 2])> {
+        points
+            .iter()
+            .filter(|(p, q)| {
+                let m = t.apply(*p);
+                (m[0] - q[0]).hypot(m[1] - q[1]) <= tolerance
+            })
+            .copied()
+            .collect()
+    };
+    let n = points.len();
+    if n < 3 {
+        return None;
+    }
+    // Deterministic: the same pair always gets the same verdict.
+    let mut rng = ChaCha8Rng::seed_from_u64(n as u64);
+    let all_pairs = n * (n - 1) / 2;
+    let draws: Vec<(usize, usize)> = if all_pairs <= RANSAC_DRAWS {
+        (0..n).flat_map(|i| (i + 1..n).map(move |j| (i, j))).collect()
+    } else {
+        (0..RANSAC_DRAWS)
+            .map(|_| (rng.random_range(0..n), rng.random_range(0..n)))
+            .filter(|(i, j)| i != j)
+            .collect()
+    };
+    let mut best: Option<(SimilarityTransform, usize)> = None;
+    for (i, j) in draws {
+        let (p, q) = ([points[i].0, points[j].0], [points[i].1, points[j].1]);
+        // Two matches closer than two patches give an unstable rotation.
+        if (p[0][0] - p[1][0]).hypot(p[0][1] - p[1][1]) < 2.0 * patch_side {
+            continue;
+        }
+        let Some(candidate) = SimilarityTransform::through(p, q).filter(plausible) else {
+            continue;
+        };
+        let count = inliers_of(&candidate).len();
+        if best.is_none_or(|(_, c)| count > c) {
+            best = Some((candidate, count));
+        }
+    }
+    let (rough, _) = best?;
+    let refined = SimilarityTransform::fit(&inliers_of(&rough)).filter(plausible)?;
+    let count = inliers_of(&refined).len();
+    Some((refined, count))
+}
+
+/// Fewest overlapping thumbnail pixels a comparison is made on.
+const MIN_OVERLAP_PIXELS: usize = THUMB_SIDE * THUMB_SIDE / 8;
+
+/// Correlation of `a`'s thumbnail with `b`'s resampled through `transform`,
+/// each with its best plane removed; `None` when the overlap is too small.
+fn aligned_correlation(
+    a: &ImageEvidence,
+    b: &ImageEvidence,
+    transform: &SimilarityTransform,
+) -> Option<f32> {
+    let a_cell = a.crop_side / THUMB_SIDE as f32;
+    let b_cell = b.crop_side / THUMB_SIDE as f32;
+    let mut samples: Vec<([f32; 2], f32, f32)> = Vec::with_capacity(THUMB_SIDE * THUMB_SIDE);
+    for y in 0..THUMB_SIDE {
+        for x in 0..THUMB_SIDE {
+            let centre = [(x as f32 + 0.5) * a_cell, (y as f32 + 0.5) * a_cell];
+            let [bx, by] = transform.apply(centre);
+            let (u, v) = (bx / b_cell - 0.5, by / b_cell - 0.5);
+            if let Some(value) = bilinear(&b.thumbnail, u, v) {
+                let position = [x as f32 / THUMB_SIDE as f32, y as f32 / THUMB_SIDE as f32];
+                samples.push((position, a.thumbnail[y * THUMB_SIDE + x], value));
+            }
+        }
+    }
+    if samples.len() < MIN_OVERLAP_PIXELS {
+        return None;
+    }
+    let positions: Vec<[f32; 2]> = samples.iter().map(|s| s.0).collect();
+    let residual_a = plane_residual(&positions, samples.iter().map(|s| s.1));
+    let residual_b = plane_residual(&positions, samples.iter().map(|s| s.2));
+    let (mut ab, mut aa, mut bb) = (0.0f64, 0.0f64, 0.0f64);
+    for (x, y) in residual_a.iter().zip(&residual_b) {
+        ab += f64::from(x * y);
+        aa += f64::from(x * x);
+        bb += f64::from(y * y);
+    }
+    // Residual energy below this (grey levels on 0..1, per pixel) is
+    // compression noise, not structure: nothing to correlate.
+    let floor = 1e-5 * samples.len() as f64;
+    if aa < floor || bb < floor {
+        return Some(0.0);
+    }
+    Some((ab / (aa * bb).sqrt()) as f32)
+}
+
+fn bilinear(thumb: &[f32], u: f32, v: f32) -> Option<f32> {
+    let last = (THUMB_SIDE - 1) as f32;
+    if !(0.0..=last).contains(&u) || !(0.0..=last).contains(&v) {
+        return None;
+    }
+    let (x0, y0) = (u.floor() as usize, v.floor() as usize);
+    let (x1, y1) = ((x0 + 1).min(THUMB_SIDE - 1), (y0 + 1).min(THUMB_SIDE - 1));
+    let (fx, fy) = (u - x0 as f32, v - y0 as f32);
+    let at = |x: usize, y: usize| thumb[y * THUMB_SIDE + x];
+    let top = at(x0, y0) * (1.0 - fx) + at(x1, y0) * fx;
+    let bottom = at(x0, y1) * (1.0 - fx) + at(x1, y1) * fx;
+    Some(top * (1.0 - fy) + bottom * fy)
+}
+
+/// `values` minus their least-squares plane `c0 + c1·x + c2·y`.
+fn plane_residual(positions: &[[f32; 2]], values: impl Iterator<Item = f32>) -> Vec<f32> {
+    let values: Vec<f64> = values.map(f64::from).collect();
+    // Normal equations of the 3-parameter fit, solved by Cramer's rule.
+    let mut m = [[0.0f64; 3]; 3];
+    let mut r = [0.0f64; 3];
+    for (p, &v) in positions.iter().zip(&values) {
+        let basis = [1.0, f64::from(p[0]), f64::from(p[1])];
+        for i in 0..3 {
+            r[i] += basis[i] * v;
+            for j in 0..3 {
+                m[i][j] += basis[i] * basis[j];
+            }
+        }
+    }
+    let det = |m: &[[f64; 3]; 3]| {
+        m[0][0] * (m[1][1] * m[2][2] - m[1][2] * m[2][1])
+            - m[0][1] * (m[1][0] * m[2][2] - m[1][2] * m[2][0])
+            + m[0][2] * (m[1][0] * m[2][1] - m[1][1] * m[2][0])
+    };
+    let d = det(&m);
+    let coefficients: [f64; 3] = if d.abs() < 1e-12 {
+        let mean = values.iter().sum::<f64>() / values.len().max(1) as f64;
+        [mean, 0.0, 0.0]
+    } else {
+        std::array::from_fn(|k| {
+            let mut replaced = m;
+            for (row, value) in replaced.iter_mut().zip(r) {
+                row[k] = value;
+            }
+            det(&replaced) / d
+        })
+    };
+    positions
+        .iter()
+        .zip(&values)
+        .map(|(p, v)| {
+            let plane = coefficients[0]
+                + coefficients[1] * f64::from(p[0])
+                + coefficients[2] * f64::from(p[1]);
+            (v - plane) as f32
+        })
+        .collect()
+}
+
+/// Checks whether two images show the same picture.
+pub fn compare(a: &ImageEvidence, b: &ImageEvidence, options: &VerifyOptions) -> PairCheck {
+    let matches = mutual_nearest(a, b, options.min_token_similarity);
+    let fitted = fit_transform(a, b, &matches, options);
+    let (score, inliers) = match fitted {
+        Some((transform, inliers)) => (
+            aligned_correlation(a, b, &transform).unwrap_or(0.0),
+            inliers,
+        ),
+        None => (0.0, 0),
+    };
+    PairCheck {
+        confirmed: score >= options.min_correlation,
+        score,
+        matches: matches.len(),
+        inliers,
+    }
+}
+
+/// Images per forward pass when preparing evidence.
+const PREPARE_BATCH: usize = 16;
+
+/// Verifies pairs of indexed files, keeping each file's evidence for reuse.
+pub struct PairVerifier<'a> {
+    encoder: &'a Encoder,
+    options: VerifyOptions,
+    decode: DecodeOptions,
+    cache: Mutex<HashMap<PathBuf, Arc<ImageEvidence>>>,
+}
+
+impl<'a> PairVerifier<'a> {
+    pub fn new(encoder: &'a Encoder, options: VerifyOptions) -> Self {
+        Self {
+            encoder,
+            options,
+            decode: DecodeOptions::default(),
+            cache: Mutex::new(HashMap::new()),
+        }
+    }
+
+    /// Decodes, prepares and encodes a file once.
+    pub fn evidence(&self, path: &Path) -> Result<Arc<ImageEvidence>, EngineError> {
+        if let Some(found) = self.cached(path) {
+            return Ok(found);
+        }
+        let spec = &self.encoder.spec().preprocess;
+        let decode = DecodeOptions {
+            target_shorter_side: Some(spec.resize_shorter),
+            ..self.decode.clone()
+        };
+        let decoded = decode_path(path, &decode)?;
+        let prepared = preprocess(&decoded.rgb, spec)?;
+        let evidence = ImageEvidence::of_prepared(self.encoder, &[prepared])?
+            .pop()
+            .map(Arc::new)
+            .ok_or_else(|| EngineError::InvalidArgument("encoder returned no output".into()))?;
+        if let Ok(mut cache) = self.cache.lock() {
+            cache.insert(path.to_path_buf(), Arc::clone(&evidence));
+        }
+        Ok(evidence)
+    }
+
+    /// Computes the evidence of many files at once: parallel decoding,
+    /// batched forward passes. Files that fail are left out (a later
+    /// [`Self::check`] on them reports the error).
+    pub fn prepare(&self, paths: &[PathBuf]) -> Result<(), EngineError> {
+        let spec = &self.encoder.spec().preprocess;
+        let decode = DecodeOptions {
+            target_shorter_side: Some(spec.resize_shorter),
+            ..self.decode.clone()
+        };
+        let missing: Vec<&PathBuf> = paths.iter().filter(|p| self.cached(p).is_none()).collect();
+        for chunk in missing.chunks(PREPARE_BATCH) {
+            let prepared: Vec<(&PathBuf, PreparedImage)> = chunk
+                .par_iter()
+                .filter_map(|path| {
+                    let decoded = decode_path(path, &decode).ok()?;
+                    Some((*path, preprocess(&decoded.rgb, spec).ok()?))
+                })
+                .collect();
+            let images: Vec<PreparedImage> = prepared.iter().map(|(_, p)| p.clone()).collect();
+            let evidence = ImageEvidence::of_prepared(self.encoder, &images)?;
+            if let Ok(mut cache) = self.cache.lock() {
+                for ((path, _), found) in prepared.into_iter().zip(evidence) {
+                    cache.insert(path.clone(), Arc::new(found));
+                }
+            }
+        }
+        Ok(())
+    }
+
+    fn cached(&self, path: &Path) -> Option<Arc<ImageEvidence>> {
+        self.cache.lock().ok()?.get(path).cloned()
+    }
+
+    /// Checks two files against each other.
+    pub fn check(&self, a: &Path, b: &Path) -> Result<PairCheck, EngineError> {
+        Ok(compare(&self.evidence(a)?, &self.evidence(b)?, &self.options))
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn transform_through_two_points_recovers_scale_rotation_shift() {
+        let truth = SimilarityTransform {
+            a: 0.8 * 10f32.to_radians().cos(),
+            b: 0.8 * 10f32.to_radians().sin(),
+            tx: 12.0,
+            ty: -5.0,
+        };
+        let p = [[10.0, 20.0], [150.0, 90.0]];
+        let q = p.map(|x| truth.apply(x));
+        let found = SimilarityTransform::through(p, q).unwrap();
+        assert!((found.scale() - 0.8).abs() < 1e-4);
+        assert!((found.rotation_degrees() - 10.0).abs() < 1e-3);
+        let pairs: Vec<_> = [[0.0, 0.0], [50.0, 10.0], [30.0, 80.0], [200.0, 150.0]]
+            .into_iter()
+            .map(|p| (p, truth.apply(p)))
+            .collect();
+        let fitted = SimilarityTransform::fit(&pairs).unwrap();
+        assert!((fitted.tx - 12.0).abs() < 1e-3 && (fitted.ty + 5.0).abs() < 1e-3);
+    }
+
+    #[test]
+    fn plane_removal_leaves_nothing_of_a_ramp() {
+        let positions: Vec<[f32; 2]> = (0..100).map(|i| [(i % 10) as f32, (i / 10) as f32]).collect();
+        let ramp = positions.iter().map(|p| 0.3 + 0.02 * p[0] - 0.01 * p[1]);
+        let residual = plane_residual(&positions, ramp);
+        assert!(residual.iter().all(|r| r.abs() < 1e-5));
+    }
+}
