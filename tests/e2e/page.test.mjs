@@ -57,9 +57,15 @@ async function paths(selector) {
 
 before(async () => {
   fs.mkdirSync(artifactsDir, { recursive: true });
-  store = fs.mkdtempSync(path.join(os.tmpdir(), 'vitrine-e2e-store-'));
-  await indexCollection(vitrineBin, store, demoDir);
-  server = await startServer(vitrineBin, store);
+  // VITRINE_E2E_STORE: an already indexed copy of demo-images, to skip
+  // indexing while working on the page; it is left in place.
+  if (process.env.VITRINE_E2E_STORE) {
+    server = await startServer(vitrineBin, process.env.VITRINE_E2E_STORE);
+  } else {
+    store = fs.mkdtempSync(path.join(os.tmpdir(), 'vitrine-e2e-store-'));
+    await indexCollection(vitrineBin, store, demoDir);
+    server = await startServer(vitrineBin, store);
+  }
   browser = await launchBrowser();
   page = browser.page;
   page.on('request', (request) => requests.push(request.url()));
@@ -198,6 +204,52 @@ test('image detail: metadata, neighbours and label suggestion', async () => {
   assert.equal(neighbours[0], planted.edited, 'the nearest neighbour of the original is its planted edit');
   await page.waitForSelector('[data-testid="suggestion"]');
   await shot('image');
+});
+
+test('duplicates: a page of 1,000 groups renders and stays navigable by keyboard', async (t) => {
+  // Only the duplicates answer is synthetic (Playwright answers it); the page,
+  // the other endpoints and the thumbnails come from the real service.
+  const collections = await (await fetch(`${server.url}/api/v1/collections`)).json();
+  const name = collections.collections[0].name;
+  const listing = await (await fetch(`${server.url}/api/v1/collections/${encodeURIComponent(name)}/images?per_page=300`)).json();
+  const images = listing.items;
+  const count = 1000;
+  const groups = Array.from({ length: count }, (_, g) => ({
+    tier: 'near',
+    members: [0, 1, 2].map((m) => ({
+      ...images[(3 * g + m) % images.length], tier: m ? 'near' : 'bytes', similarity: m ? 0.95 : 1, keeper: m === 0,
+    })),
+  }));
+  const body = JSON.stringify({ threshold: 0.9, total: count, page: 1, per_page: count, groups });
+  const pattern = '**/api/v1/collections/*/duplicates*';
+  await page.route(pattern, (route) => route.fulfill({ contentType: 'application/json', body }));
+  try {
+    await page.goto(`${server.url}/#/search`);
+    await page.waitForSelector('[data-testid="dropzone"]');
+    const ms = await page.evaluate(async (n) => {
+      const start = performance.now();
+      location.hash = `#/duplicates?per_page=${n}`;
+      await new Promise((resolve) => {
+        const check = () => (document.querySelectorAll('[data-testid="groups"] .group').length === n ? resolve() : requestAnimationFrame(check));
+        check();
+      });
+      await new Promise((resolve) => requestAnimationFrame(() => requestAnimationFrame(resolve)));
+      return performance.now() - start;
+    }, count);
+    // A figure to read, not a pass mark; tests/e2e/bench-render.mjs prints the table.
+    t.diagnostic(`1,000 duplicate groups rendered in ${ms.toFixed(0)} ms`);
+    const keepers = await page.$$eval('[data-testid="groups"] .card.is-keeper', (els) => els.length);
+    assert.equal(keepers, count, 'each synthetic group shows its keeper');
+    await page.focus('[data-testid="groups"] .group[aria-labelledby="group-999"]');
+    await page.keyboard.press('j');
+    assert.equal(await page.evaluate(() => document.activeElement.getAttribute('aria-labelledby')), 'group-1000');
+    assert.ok(await page.evaluate(() => {
+      const r = document.activeElement.getBoundingClientRect();
+      return r.top >= 0 && r.top < window.innerHeight;
+    }), 'the focused group is scrolled into view');
+  } finally {
+    await page.unroute(pattern);
+  }
 });
 
 test('the page raised no script error', () => {

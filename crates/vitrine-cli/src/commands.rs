@@ -12,6 +12,7 @@ use vitrine_engine::catalog::Catalog;
 use vitrine_engine::duplicates::{
     find_duplicate_groups, find_leaks, DuplicateGroup, DuplicateOptions, LeakOptions, LeakReport,
 };
+use vitrine_engine::calibrate::{calibrate, CalibrationOptions, CalibrationReport, ThresholdPoint};
 use vitrine_engine::clusters::{cluster_collection, ClusterOptions, ClusterReport};
 use vitrine_engine::labels::{
     find_label_suspects, suggest_labels, LabelOptions, LabelSuggestion, LabelSuspect,
@@ -117,6 +118,20 @@ pub enum Command {
     /// Label suggestions and likely mislabels.
     #[command(subcommand)]
     Labels(LabelCommand),
+    /// Serve the collections over HTTP: JSON API, metrics and the page.
+    Serve(ServeArgs),
+    /// Measure near-duplicate thresholds on copies of a sample, edited in
+    /// memory (files are only read).
+    Calibrate {
+        /// Images to sample and edit.
+        #[arg(long, default_value_t = 50)]
+        sample: usize,
+        /// Seed of the sample.
+        #[arg(long, default_value_t = 0)]
+        seed: u64,
+        #[command(flatten)]
+        output: OutputArgs,
+    },
 }
 
 #[derive(Subcommand, Debug)]
@@ -314,6 +329,7 @@ impl Session {
         Ok(DuplicateOptions {
             near_duplicate_threshold,
             neighbours_per_image: self.settings.queries.neighbours_per_image,
+            ..DuplicateOptions::default()
         })
     }
 }
@@ -384,6 +400,12 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
             let options = vote.options(min_disagreement);
             emit(&SuspectTable(find_label_suspects(&store, &catalog, &options)?), &output)?;
         }
+        Command::Serve(args) => serve(&ctx, &args)?,
+        Command::Calibrate {
+            sample,
+            seed,
+            output,
+        } => calibrate_thresholds(&ctx, sample, seed, &output)?,
     }
     Ok(ExitCode::SUCCESS)
 }
@@ -405,7 +427,7 @@ fn embed_file(encoder: &Encoder, settings: &Settings, file: &Path) -> Result<Vec
     };
     let decoded = decode_path(file, &options).with_context(|| format!("{}", file.display()))?;
     let prepared = preprocess(&decoded.rgb, spec)?;
-    let mut embeddings = encoder.embed(std::slice::from_ref(&prepared))?;
+    let mut embeddings = encoder.embed(&[&prepared])?;
     Ok(embeddings.remove(0))
 }
 
@@ -473,8 +495,9 @@ fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
     let started = std::time::Instant::now();
     let report = index_roots(&mut store, &encoder, &args.roots, &options, &Progress::for_stderr())?;
     println!(
-        "{report} ({} embedded by reuse of identical bytes) in {:.1} s; {} images in the collection",
+        "{report} ({} embedded by reuse of identical bytes, {} non-image files skipped) in {:.1} s; {} images in the collection",
         report.reused_embeddings,
+        report.skipped_non_images,
         started.elapsed().as_secs_f64(),
         store.len()
     );
@@ -790,6 +813,71 @@ impl Report for ClusterTable {
     }
 }
 
+fn calibrate_thresholds(ctx: &Session, sample: usize, seed: u64, output: &OutputArgs) -> Result<()> {
+    let store = ctx.open_store()?;
+    let catalog = Catalog::load(&store)?;
+    let encoder = ctx.encoder()?;
+    let options = CalibrationOptions {
+        sample,
+        seed,
+        ..CalibrationOptions::default()
+    };
+    emit(&CalibrationTable(calibrate(&store, &catalog, &encoder, &options)?), output)
+}
+
+struct CalibrationTable(CalibrationReport);
+
+impl Report for CalibrationTable {
+    type Item = ThresholdPoint;
+    fn document(&self) -> serde_json::Value {
+        serde_json::to_value(&self.0).unwrap_or_default()
+    }
+    fn items(&self) -> Vec<&ThresholdPoint> {
+        self.0.points.iter().collect()
+    }
+    fn columns(&self) -> Vec<&'static str> {
+        vec!["threshold", "precision", "recall mild", "recall strong", "false positives"]
+    }
+    fn rows(&self) -> Vec<Vec<String>> {
+        self.0
+            .points
+            .iter()
+            .map(|p| {
+                vec![
+                    format!("{:.3}", p.threshold),
+                    format!("{:.3}", p.precision),
+                    format!("{:.3}", p.recall_mild),
+                    format!("{:.3}", p.recall_strong),
+                    p.false_positives.to_string(),
+                ]
+            })
+            .collect()
+    }
+    fn preamble(&self) -> Vec<String> {
+        let r = &self.0;
+        let mut lines = vec![
+            format!(
+                "{} originals ({} unreadable skipped): {} mild and {} strong copies, {} nearest distinct images (highest similarity {:.3})",
+                r.originals, r.unreadable, r.mild_copies, r.strong_copies, r.negatives, r.max_negative_similarity
+            ),
+            match r.recommended_threshold {
+                Some(t) => format!("recommended threshold: {t:.3}"),
+                None => "no threshold reaches the target precision on this sample".into(),
+            },
+            format!("rule: {}", r.rule),
+            String::new(),
+        ];
+        lines.extend(r.edits.iter().map(|e| {
+            format!(
+                "  {:<14} {:?}: similarity to original min {:.3}, mean {:.3}",
+                e.edit, e.severity, e.min_similarity, e.mean_similarity
+            )
+        }));
+        lines.push(String::new());
+        lines
+    }
+}
+
 struct SuggestionTable(Vec<LabelSuggestion>);
 
 impl Report for SuggestionTable {
@@ -885,5 +973,90 @@ fn import_model(args: &ImportArgs) -> Result<()> {
         spec.vit.hidden_size,
         args.out.display()
     );
+    Ok(())
+}
+
+#[derive(Args, Debug)]
+pub struct ServeArgs {
+    /// Port to listen on (default: [serve] port, else 8080).
+    #[arg(long)]
+    port: Option<u16>,
+    /// Address to listen on (default 127.0.0.1; others need a token).
+    #[arg(long)]
+    bind: Option<String>,
+    /// Another collection to serve, as NAME=DIR (repeatable).
+    #[arg(long = "collection", value_name = "NAME=DIR")]
+    collections: Vec<String>,
+    /// Print the OpenAPI document of the API and exit.
+    #[arg(long)]
+    print_openapi: bool,
+}
+
+/// The `--store` collection's name in URLs: its directory's name without
+/// leading dots (`.vitrine` serves as `vitrine`).
+fn store_collection_name(store: &Path) -> String {
+    let dir = store.canonicalize().unwrap_or_else(|_| store.to_path_buf());
+    let name: String = dir
+        .file_name()
+        .map(|n| n.to_string_lossy().trim_start_matches('.').to_owned())
+        .unwrap_or_default()
+        .chars()
+        .map(|c| if c.is_ascii_alphanumeric() || matches!(c, '-' | '_' | '.') { c } else { '-' })
+        .collect();
+    if name.is_empty() {
+        "default".into()
+    } else {
+        name
+    }
+}
+
+fn serve(ctx: &Session, args: &ServeArgs) -> Result<()> {
+    if args.print_openapi {
+        println!("{}", vitrine_service::openapi_json());
+        return Ok(());
+    }
+    let mut settings = ctx.settings.serve.clone();
+    if let Some(port) = args.port {
+        settings.port = port;
+    }
+    if let Some(bind) = &args.bind {
+        settings.bind = bind.clone();
+    }
+    let store = &ctx.global.store;
+    let mut collections = vec![(store_collection_name(store), store.clone())];
+    collections.extend(settings.collections.iter().map(|(n, d)| (n.clone(), d.clone())));
+    for spec in &args.collections {
+        let (name, dir) = spec
+            .split_once('=')
+            .with_context(|| format!("--collection {spec}: expected NAME=DIR"))?;
+        collections.push((name.to_owned(), PathBuf::from(dir)));
+    }
+    // Without a model the service still answers everything that reads stored
+    // embeddings; search by image, rescans and uploads answer 503.
+    let model = match ctx.encoder() {
+        Ok(encoder) => vitrine_service::Model::Loaded(std::sync::Arc::new(encoder)),
+        Err(err) => {
+            eprintln!("warning: {err:#}; search by image, rescans and uploads are disabled");
+            vitrine_service::Model::Missing(format!("{err:#}"))
+        }
+    };
+    let config = vitrine_service::ServiceConfig {
+        settings,
+        collections,
+        model,
+        index: IndexOptions {
+            walk: WalkOptions {
+                follow_symlinks: ctx.settings.index.follow_symlinks,
+                ignore_patterns: ctx.settings.index.ignore.clone(),
+            },
+            split_rule: SplitRule::FolderConvention,
+            decode: decode_options(&ctx.settings),
+            batch_size: ctx.settings.index.batch_size,
+            commit_every: ctx.settings.index.commit_every,
+        },
+        duplicates: ctx.duplicate_options(&ThresholdArgs { threshold: None })?,
+        reference_split: ctx.settings.queries.reference_split.clone(),
+    };
+    vitrine_service::serve(config)?;
     Ok(())
 }

@@ -13,7 +13,7 @@ pub struct Settings {
     pub model: ModelSettings,
     pub index: IndexSettings,
     pub queries: QuerySettings,
-    pub serve: toml::Table,
+    pub serve: vitrine_service::ServeSettings,
 }
 
 #[derive(Clone, Debug, Deserialize)]

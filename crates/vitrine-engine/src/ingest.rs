@@ -7,7 +7,7 @@ use std::path::{Path, PathBuf};
 use std::time::{Instant, SystemTime, UNIX_EPOCH};
 
 use rayon::prelude::*;
-use vitrine_imaging::{decode_bytes, preprocess, DecodeOptions, PreparedImage};
+use vitrine_imaging::{decode_bytes, preprocess, DecodeOptions, ImagingError, PreparedImage};
 use vitrine_model::config::ModelSpec;
 use vitrine_model::encoder::Encoder;
 use vitrine_store::{
@@ -69,6 +69,8 @@ pub struct IndexReport {
     /// Images whose bytes matched an already embedded image, so no forward
     /// pass was needed.
     pub reused_embeddings: usize,
+    /// Files that are not images and do not claim to be (no image extension).
+    pub skipped_non_images: usize,
 }
 
 impl std::fmt::Display for IndexReport {
@@ -101,6 +103,27 @@ impl IndexProgress for NoProgress {
 struct Pending {
     file: FoundFile,
     replaces: Option<ImageId>,
+}
+
+/// File name extensions that announce an image. A file without one whose
+/// content is not an image is skipped quietly (a README beside the photos);
+/// with one, it is an error worth reporting.
+const IMAGE_EXTENSIONS: &[&str] = &[
+    "jpg", "jpeg", "jpe", "jfif", "png", "webp", "gif", "bmp", "dib", "tif", "tiff",
+];
+
+fn has_image_extension(rel_path: &str) -> bool {
+    Path::new(rel_path)
+        .extension()
+        .and_then(|e| e.to_str())
+        .is_some_and(|e| IMAGE_EXTENSIONS.iter().any(|known| e.eq_ignore_ascii_case(known)))
+}
+
+/// What became of one file of a chunk.
+enum Outcome {
+    Decoded(Decoded),
+    Failed(FileError),
+    NotAnImage,
 }
 
 /// A file after decoding, ready for the forward pass (or already embedded).
@@ -265,52 +288,27 @@ fn embed_chunk(
         target_shorter_side: Some(spec.resize_shorter),
         ..options.decode.clone()
     };
-    let outcomes: Vec<Result<Decoded, FileError>> = chunk
+    let outcomes: Vec<Outcome> = chunk
         .par_iter()
         .enumerate()
         .map(|(pending_index, pending)| {
-            let fail = |reason: String| FileError {
-                root: root_id,
-                rel_path: pending.file.rel_path.clone(),
-                reason,
-                at_unix_s: now_unix_s(),
-            };
-            let bytes = std::fs::read(&pending.file.abs_path)
-                .map_err(|e| fail(format!("cannot read: {e}")))?;
-            let content_hash = *blake3::hash(&bytes).as_bytes();
-            let decoded = decode_bytes(&bytes, &decode_options).map_err(|e| fail(e.to_string()))?;
-            let mut pixel_hasher = blake3::Hasher::new();
-            pixel_hasher.update(&decoded.rgb.width().to_le_bytes());
-            pixel_hasher.update(&decoded.rgb.height().to_le_bytes());
-            pixel_hasher.update(decoded.rgb.as_raw());
-            let assigned = options.split_rule.assign(&pending.file.rel_path);
-            let record = ImageRecord {
-                root: root_id,
-                rel_path: pending.file.rel_path.clone(),
-                byte_size: bytes.len() as u64,
-                modified_unix_ns: pending.file.modified_unix_ns,
-                content_hash,
-                pixel_hash: *pixel_hasher.finalize().as_bytes(),
-                width: decoded.original_width,
-                height: decoded.original_height,
-                split: assigned.split,
-                label: assigned.label,
-            };
-            let known_embedding = store
-                .embedding_by_content_hash(&content_hash)
-                .map_err(|e| fail(e.to_string()))?;
-            let prepared = match known_embedding {
-                Some(_) => None,
-                None => Some(preprocess(&decoded.rgb, spec).map_err(|e| fail(e.to_string()))?),
-            };
-            Ok(Decoded {
+            let decoded = decode_one(
+                store,
                 pending_index,
-                record,
-                prepared,
-                known_embedding,
-            })
+                pending,
+                root_id,
+                options,
+                &decode_options,
+                spec,
+            );
+            match decoded {
+                Ok(decoded) => Outcome::Decoded(decoded),
+                Err(None) => Outcome::NotAnImage,
+                Err(Some(error)) => Outcome::Failed(error),
+            }
         })
         .collect();
+
 
     let mut changes = ChangeSet::default();
     let mut to_embed: Vec<Decoded> = Vec::new();
@@ -320,11 +318,12 @@ fn embed_chunk(
     let mut copies_of: Vec<(Decoded, usize)> = Vec::new();
     for outcome in outcomes {
         match outcome {
-            Err(error) => {
+            Outcome::NotAnImage => report.skipped_non_images += 1,
+            Outcome::Failed(error) => {
                 report.failed += 1;
                 changes.errors.push(error);
             }
-            Ok(mut decoded) => match decoded.known_embedding.take() {
+            Outcome::Decoded(mut decoded) => match decoded.known_embedding.take() {
                 Some(embedding) => {
                     report.reused_embeddings += 1;
                     ready.push((decoded, embedding));
@@ -345,10 +344,8 @@ fn embed_chunk(
 
     let mut embedded: Vec<Vec<f32>> = Vec::with_capacity(to_embed.len());
     for batch in to_embed.chunks(options.batch_size.max(1)) {
-        let images: Vec<PreparedImage> = batch
-            .iter()
-            .filter_map(|d| d.prepared.clone())
-            .collect();
+        let images: Vec<&PreparedImage> =
+            batch.iter().filter_map(|d| d.prepared.as_ref()).collect();
         embedded.extend(encoder.embed(&images)?);
     }
     for (decoded, first) in copies_of {
@@ -372,4 +369,61 @@ fn embed_chunk(
         });
     }
     Ok(changes)
+}
+
+/// Reads, hashes, decodes and preprocesses one file. `Err(None)` means the
+/// file is not an image and does not claim to be one.
+fn decode_one(
+    store: &Store,
+    pending_index: usize,
+    pending: &Pending,
+    root_id: u32,
+    options: &IndexOptions,
+    decode_options: &DecodeOptions,
+    spec: &vitrine_imaging::PreprocessSpec,
+) -> Result<Decoded, Option<FileError>> {
+    let fail = |reason: String| FileError {
+        root: root_id,
+        rel_path: pending.file.rel_path.clone(),
+        reason,
+        at_unix_s: now_unix_s(),
+    };
+    let bytes = std::fs::read(&pending.file.abs_path)
+        .map_err(|e| Some(fail(format!("cannot read: {e}"))))?;
+    let content_hash = *blake3::hash(&bytes).as_bytes();
+    let decoded = decode_bytes(&bytes, decode_options).map_err(|e| match e {
+        ImagingError::NotAnImage | ImagingError::EmptyFile
+            if !has_image_extension(&pending.file.rel_path) => None,
+        e => Some(fail(e.to_string())),
+    })?;
+    let mut pixel_hasher = blake3::Hasher::new();
+    pixel_hasher.update(&decoded.rgb.width().to_le_bytes());
+    pixel_hasher.update(&decoded.rgb.height().to_le_bytes());
+    pixel_hasher.update(decoded.rgb.as_raw());
+    let assigned = options.split_rule.assign(&pending.file.rel_path);
+    let record = ImageRecord {
+        root: root_id,
+        rel_path: pending.file.rel_path.clone(),
+        byte_size: bytes.len() as u64,
+        modified_unix_ns: pending.file.modified_unix_ns,
+        content_hash,
+        pixel_hash: *pixel_hasher.finalize().as_bytes(),
+        width: decoded.original_width,
+        height: decoded.original_height,
+        split: assigned.split,
+        label: assigned.label,
+    };
+    let known_embedding = store
+        .embedding_by_content_hash(&content_hash)
+        .map_err(|e| Some(fail(e.to_string())))?;
+    let prepared = match known_embedding {
+        Some(_) => None,
+        None => Some(preprocess(&decoded.rgb, spec).map_err(|e| Some(fail(e.to_string())))?),
+    };
+    Ok(Decoded {
+        pending_index,
+        record,
+        prepared,
+        known_embedding,
+    })
 }

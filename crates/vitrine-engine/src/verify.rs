@@ -161,20 +161,24 @@ impl SimilarityTransform {
 }
 
 impl ImageEvidence {
-    /// Evidence of prepared images (the model's input), one forward pass.
+    /// Embeddings and evidence of prepared images (the model's input), from
+    /// one forward pass.
     pub fn of_prepared(
         encoder: &Encoder,
         prepared: &[PreparedImage],
-    ) -> Result<Vec<ImageEvidence>, EngineError> {
+    ) -> Result<Vec<(Vec<f32>, ImageEvidence)>, EngineError> {
         let spec = &encoder.spec().preprocess;
         let outputs = encoder.embed_with_patches(prepared)?;
         Ok(outputs
             .into_iter()
             .zip(prepared)
-            .map(|((_, tokens), image)| ImageEvidence {
-                thumbnail: grey_thumbnail(image, &spec.mean, &spec.std),
-                crop_side: image.width as f32,
-                tokens,
+            .map(|((embedding, tokens), image)| {
+                let evidence = ImageEvidence {
+                    thumbnail: grey_thumbnail(image, &spec.mean, &spec.std),
+                    crop_side: image.width as f32,
+                    tokens,
+                };
+                (embedding, evidence)
             })
             .collect())
     }
@@ -466,7 +470,7 @@ impl<'a> PairVerifier<'a> {
         let prepared = preprocess(&decoded.rgb, spec)?;
         let evidence = ImageEvidence::of_prepared(self.encoder, &[prepared])?
             .pop()
-            .map(Arc::new)
+            .map(|(_, evidence)| Arc::new(evidence))
             .ok_or_else(|| EngineError::InvalidArgument("encoder returned no output".into()))?;
         if let Ok(mut cache) = self.cache.lock() {
             cache.insert(path.to_path_buf(), Arc::clone(&evidence));
@@ -495,7 +499,7 @@ impl<'a> PairVerifier<'a> {
             let images: Vec<PreparedImage> = prepared.iter().map(|(_, p)| p.clone()).collect();
             let evidence = ImageEvidence::of_prepared(self.encoder, &images)?;
             if let Ok(mut cache) = self.cache.lock() {
-                for ((path, _), found) in prepared.into_iter().zip(evidence) {
+                for ((path, _), (_, found)) in prepared.into_iter().zip(evidence) {
                     cache.insert(path.clone(), Arc::new(found));
                 }
             }
@@ -509,7 +513,8 @@ impl<'a> PairVerifier<'a> {
 
     /// Checks two files against each other.
     pub fn check(&self, a: &Path, b: &Path) -> Result<PairCheck, EngineError> {
-        Ok(compare(&self.evidence(a)?, &self.evidence(b)?, &self.options))
+        let (a, b) = (self.evidence(a)?, self.evidence(b)?);
+        Ok(compare(&a, &b, &self.options))
     }
 }
 

@@ -1,6 +1,8 @@
 //! An encoder ready to embed prepared images: the model, its description and
 //! the pooling it records with every embedding.
 
+use std::borrow::Borrow;
+
 use candle_core::{Device, Tensor};
 use vitrine_imaging::PreparedImage;
 
@@ -53,13 +55,14 @@ impl Encoder {
         self.spec.pooling = pooling;
     }
 
-    fn batch_tensor(&self, images: &[PreparedImage]) -> Result<Tensor, ModelError> {
+    fn batch_tensor<I: Borrow<PreparedImage>>(&self, images: &[I]) -> Result<Tensor, ModelError> {
         let first = images
             .first()
+            .map(Borrow::borrow)
             .ok_or_else(|| ModelError::InvalidInput("empty batch".into()))?;
         let (w, h) = (first.width as usize, first.height as usize);
         let mut data = Vec::with_capacity(images.len() * 3 * h * w);
-        for image in images {
+        for image in images.iter().map(Borrow::borrow) {
             if (image.width as usize, image.height as usize) != (w, h) {
                 return Err(ModelError::InvalidInput(format!(
                     "batch mixes input sizes {w}x{h} and {}x{}",
@@ -75,13 +78,13 @@ impl Encoder {
         )?)
     }
 
-    fn forward(&self, images: &[PreparedImage]) -> Result<VitOutput, ModelError> {
+    fn forward<I: Borrow<PreparedImage>>(&self, images: &[I]) -> Result<VitOutput, ModelError> {
         let pixels = self.batch_tensor(images)?;
         Ok(self.model.forward(&pixels)?)
     }
 
     /// L2-normalised embeddings, one per image, pooled as the spec says.
-    pub fn embed(&self, images: &[PreparedImage]) -> Result<Vec<Vec<f32>>, ModelError> {
+    pub fn embed<I: Borrow<PreparedImage>>(&self, images: &[I]) -> Result<Vec<Vec<f32>>, ModelError> {
         if images.is_empty() {
             return Ok(Vec::new());
         }
@@ -90,9 +93,9 @@ impl Encoder {
     }
 
     /// Embeddings together with each image's normalised patch tokens.
-    pub fn embed_with_patches(
+    pub fn embed_with_patches<I: Borrow<PreparedImage>>(
         &self,
-        images: &[PreparedImage],
+        images: &[I],
     ) -> Result<Vec<(Vec<f32>, PatchTokens)>, ModelError> {
         if images.is_empty() {
             return Ok(Vec::new());
@@ -105,7 +108,8 @@ impl Encoder {
         let (b, n, d) = patches.dims3()?;
         let patches = crate::vit::l2_normalise(&patches.reshape((b * n, d))?)?.reshape((b, n, d))?;
         let p = self.model.config().patch_size;
-        let (rows, cols) = (images[0].height as usize / p, images[0].width as usize / p);
+        let first = images[0].borrow();
+        let (rows, cols) = (first.height as usize / p, first.width as usize / p);
         let mut result = Vec::with_capacity(b);
         for (i, embedding) in embeddings.into_iter().enumerate() {
             let normalised = patches.get(i)?.flatten_all()?.to_vec1::<f32>()?;

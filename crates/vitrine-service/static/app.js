@@ -373,11 +373,19 @@
           : null));
       if (options.score !== undefined) card.append(scoreBar(options.score));
     }
-    card.append(h('p', { class: 'path' }, h('a', { href: detail }, img.path || `image ${img.id}`)));
+    card.append(h('p', { class: 'path' }, h('a', { href: detail }, pathText(img))));
     card.append(splitLabelChips(img));
     if (options.meta) card.append(h('p', { class: 'meta' }, options.meta));
     if (options.actions) card.append(h('div', { class: 'actions' }, options.actions));
     return card;
+  }
+
+  /** A path that wraps after its folder rather than inside the file name. */
+  function pathText(img) {
+    if (!img.path) return `image ${img.id}`;
+    const cut = img.path.lastIndexOf('/') + 1;
+    if (cut === 0) return h('span', { class: 'file' }, img.path);
+    return [h('span', { class: 'dir' }, img.path.slice(0, cut)), h('wbr'), h('span', { class: 'file' }, img.path.slice(cut))];
   }
 
   function searchFromLink(img) {
@@ -411,8 +419,9 @@
   }
 
   /** A similarity threshold slider that re-queries when the user settles on a value. */
-  function thresholdControl(current, onSettle) {
+  function thresholdControl(requested, onSettle) {
     const id = 'threshold';
+    const current = Math.min(1, Math.max(0.7, Number.isFinite(requested) ? requested : 0.9));
     const input = h('input', { type: 'range', id, min: '0.70', max: '1', step: '0.005', value: current.toFixed(3) });
     const output = h('output', { for: id }, current.toFixed(3));
     let timer = null;
