@@ -8,21 +8,21 @@ use std::process::ExitCode;
 use anyhow::{bail, Context, Result};
 use clap::{Args, Parser, Subcommand};
 use serde::Serialize;
+use vitrine_engine::calibrate::{calibrate, CalibrationOptions, CalibrationReport, ThresholdPoint};
 use vitrine_engine::catalog::Catalog;
+use vitrine_engine::clusters::{cluster_collection, ClusterOptions, ClusterReport};
 use vitrine_engine::duplicates::{
     find_duplicate_groups, find_leaks, DuplicateGroup, DuplicateOptions, LeakOptions, LeakReport,
 };
-use vitrine_engine::calibrate::{calibrate, CalibrationOptions, CalibrationReport, ThresholdPoint};
-use vitrine_engine::clusters::{cluster_collection, ClusterOptions, ClusterReport};
+use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions};
 use vitrine_engine::labels::{
     find_label_suspects, suggest_labels, LabelOptions, LabelSuggestion, LabelSuspect,
 };
-use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions};
 use vitrine_engine::neighbours::{nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter};
 use vitrine_engine::splits::SplitRule;
 use vitrine_engine::walk::WalkOptions;
-use vitrine_imaging::{decode_path, preprocess, DecodeOptions};
 use vitrine_imaging::PreprocessSpec;
+use vitrine_imaging::{decode_path, preprocess, DecodeOptions};
 use vitrine_model::config::Pooling;
 use vitrine_model::encoder::Encoder;
 use vitrine_model::families::{import_checkpoint, FamilyHints, ImportSettings};
@@ -297,7 +297,12 @@ impl Session {
 
     fn encoder(&self) -> Result<Encoder> {
         let root = self.model_root();
-        let dir = match self.global.model.clone().or_else(|| self.settings.model.path.clone()) {
+        let dir = match self
+            .global
+            .model
+            .clone()
+            .or_else(|| self.settings.model.path.clone())
+        {
             Some(path) => resolve_model_path(&path, &root)
                 .with_context(|| format!("while loading model {}", path.display()))?,
             None => {
@@ -381,14 +386,23 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
         Command::Clusters { k, seed, output } => {
             let store = ctx.open_store()?;
             let catalog = Catalog::load(&store)?;
-            let options = ClusterOptions { n_clusters: k, seed };
-            emit(&ClusterTable(cluster_collection(&catalog, &options)?), &output)?;
+            let options = ClusterOptions {
+                n_clusters: k,
+                seed,
+            };
+            emit(
+                &ClusterTable(cluster_collection(&catalog, &options)?),
+                &output,
+            )?;
         }
         Command::Labels(LabelCommand::Suggest { vote, output }) => {
             let store = ctx.open_store()?;
             let catalog = Catalog::load(&store)?;
             let options = vote.options(LabelOptions::default().min_disagreement);
-            emit(&SuggestionTable(suggest_labels(&store, &catalog, &options)?), &output)?;
+            emit(
+                &SuggestionTable(suggest_labels(&store, &catalog, &options)?),
+                &output,
+            )?;
         }
         Command::Labels(LabelCommand::Suspects {
             vote,
@@ -398,7 +412,10 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
             let store = ctx.open_store()?;
             let catalog = Catalog::load(&store)?;
             let options = vote.options(min_disagreement);
-            emit(&SuspectTable(find_label_suspects(&store, &catalog, &options)?), &output)?;
+            emit(
+                &SuspectTable(find_label_suspects(&store, &catalog, &options)?),
+                &output,
+            )?;
         }
         Command::Serve(args) => serve(&ctx, &args)?,
         Command::Calibrate {
@@ -493,7 +510,13 @@ fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
         commit_every: ctx.settings.index.commit_every,
     };
     let started = std::time::Instant::now();
-    let report = index_roots(&mut store, &encoder, &args.roots, &options, &Progress::for_stderr())?;
+    let report = index_roots(
+        &mut store,
+        &encoder,
+        &args.roots,
+        &options,
+        &Progress::for_stderr(),
+    )?;
     println!(
         "{report} ({} embedded by reuse of identical bytes, {} non-image files skipped) in {:.1} s; {} images in the collection",
         report.reused_embeddings,
@@ -565,10 +588,17 @@ impl Report for StatusReport {
         let mut lines = vec![
             format!("collection: {} images, {} errors", self.images, self.errors),
             format!("model: {}", self.model),
-            format!("index on disk: {:.1} MiB", self.index_disk_bytes as f64 / (1 << 20) as f64),
+            format!(
+                "index on disk: {:.1} MiB",
+                self.index_disk_bytes as f64 / (1 << 20) as f64
+            ),
         ];
         lines.extend(self.roots.iter().map(|r| format!("root: {r}")));
-        let splits: Vec<String> = self.splits.iter().map(|(s, n)| format!("{s} {n}")).collect();
+        let splits: Vec<String> = self
+            .splits
+            .iter()
+            .map(|(s, n)| format!("{s} {n}"))
+            .collect();
         lines.push(format!("splits: {}", splits.join(", ")));
         lines.push(String::new());
         lines
@@ -604,7 +634,10 @@ fn status(ctx: &Session, list_errors: bool, output: &OutputArgs) -> Result<()> {
             errors
                 .iter()
                 .map(|e| ErrorLine {
-                    root: roots.get(&e.root).map(|p| p.display().to_string()).unwrap_or_default(),
+                    root: roots
+                        .get(&e.root)
+                        .map(|p| p.display().to_string())
+                        .unwrap_or_default(),
                     path: e.rel_path.clone(),
                     reason: e.reason.clone(),
                 })
@@ -691,7 +724,16 @@ impl Report for DuplicateReport {
         self.0.iter().collect()
     }
     fn columns(&self) -> Vec<&'static str> {
-        vec!["group", "keep", "tier", "similarity", "id", "split", "size", "path"]
+        vec![
+            "group",
+            "keep",
+            "tier",
+            "similarity",
+            "id",
+            "split",
+            "size",
+            "path",
+        ]
     }
     fn rows(&self) -> Vec<Vec<String>> {
         let mut rows = Vec::new();
@@ -699,7 +741,11 @@ impl Report for DuplicateReport {
             for member in &group.members {
                 rows.push(vec![
                     (index + 1).to_string(),
-                    if member.keeper { "*".into() } else { String::new() },
+                    if member.keeper {
+                        "*".into()
+                    } else {
+                        String::new()
+                    },
                     format!("{:?}", member.tier).to_lowercase(),
                     score(member.similarity),
                     member.image.id.to_string(),
@@ -779,7 +825,14 @@ impl Report for ClusterTable {
         self.0.clusters.iter().collect()
     }
     fn columns(&self) -> Vec<&'static str> {
-        vec!["cluster", "size", "cohesion", "top labels", "splits", "medoid"]
+        vec![
+            "cluster",
+            "size",
+            "cohesion",
+            "top labels",
+            "splits",
+            "medoid",
+        ]
     }
     fn rows(&self) -> Vec<Vec<String>> {
         self.0
@@ -792,8 +845,11 @@ impl Report for ClusterTable {
                     .take(3)
                     .map(|l| format!("{} {:.0}%", l.label, 100.0 * l.share))
                     .collect();
-                let splits: Vec<String> =
-                    c.split_mix.iter().map(|s| format!("{} {}", s.split, s.count)).collect();
+                let splits: Vec<String> = c
+                    .split_mix
+                    .iter()
+                    .map(|s| format!("{} {}", s.split, s.count))
+                    .collect();
                 vec![
                     c.index.to_string(),
                     c.size.to_string(),
@@ -807,13 +863,21 @@ impl Report for ClusterTable {
     }
     fn preamble(&self) -> Vec<String> {
         vec![
-            format!("{} clusters (spherical k-means, seed {})", self.0.n_clusters, self.0.seed),
+            format!(
+                "{} clusters (spherical k-means, seed {})",
+                self.0.n_clusters, self.0.seed
+            ),
             String::new(),
         ]
     }
 }
 
-fn calibrate_thresholds(ctx: &Session, sample: usize, seed: u64, output: &OutputArgs) -> Result<()> {
+fn calibrate_thresholds(
+    ctx: &Session,
+    sample: usize,
+    seed: u64,
+    output: &OutputArgs,
+) -> Result<()> {
     let store = ctx.open_store()?;
     let catalog = Catalog::load(&store)?;
     let encoder = ctx.encoder()?;
@@ -822,7 +886,10 @@ fn calibrate_thresholds(ctx: &Session, sample: usize, seed: u64, output: &Output
         seed,
         ..CalibrationOptions::default()
     };
-    emit(&CalibrationTable(calibrate(&store, &catalog, &encoder, &options)?), output)
+    emit(
+        &CalibrationTable(calibrate(&store, &catalog, &encoder, &options)?),
+        output,
+    )
 }
 
 struct CalibrationTable(CalibrationReport);
@@ -836,7 +903,13 @@ impl Report for CalibrationTable {
         self.0.points.iter().collect()
     }
     fn columns(&self) -> Vec<&'static str> {
-        vec!["threshold", "precision", "recall mild", "recall strong", "false positives"]
+        vec![
+            "threshold",
+            "precision",
+            "recall mild",
+            "recall strong",
+            "false positives",
+        ]
     }
     fn rows(&self) -> Vec<Vec<String>> {
         self.0
@@ -897,7 +970,9 @@ impl Report for SuggestionTable {
             .map(|s| {
                 vec![
                     s.image.path.clone(),
-                    s.suggested_label.clone().unwrap_or_else(|| "(abstain)".into()),
+                    s.suggested_label
+                        .clone()
+                        .unwrap_or_else(|| "(abstain)".into()),
                     score(s.confidence),
                     opt(&s.leading_label),
                 ]
@@ -917,7 +992,13 @@ impl Report for SuspectTable {
         self.0.iter().collect()
     }
     fn columns(&self) -> Vec<&'static str> {
-        vec!["path", "label", "disagreement", "neighbours say", "confidence"]
+        vec![
+            "path",
+            "label",
+            "disagreement",
+            "neighbours say",
+            "confidence",
+        ]
     }
     fn rows(&self) -> Vec<Vec<String>> {
         self.0
@@ -1001,7 +1082,13 @@ fn store_collection_name(store: &Path) -> String {
         .map(|n| n.to_string_lossy().trim_start_matches('.').to_owned())
         .unwrap_or_default()
         .chars()
-        .map(|c| if c.is_ascii_alphanumeric() || matches!(c, '-' | '_' | '.') { c } else { '-' })
+        .map(|c| {
+            if c.is_ascii_alphanumeric() || matches!(c, '-' | '_' | '.') {
+                c
+            } else {
+                '-'
+            }
+        })
         .collect();
     if name.is_empty() {
         "default".into()
@@ -1024,7 +1111,12 @@ fn serve(ctx: &Session, args: &ServeArgs) -> Result<()> {
     }
     let store = &ctx.global.store;
     let mut collections = vec![(store_collection_name(store), store.clone())];
-    collections.extend(settings.collections.iter().map(|(n, d)| (n.clone(), d.clone())));
+    collections.extend(
+        settings
+            .collections
+            .iter()
+            .map(|(n, d)| (n.clone(), d.clone())),
+    );
     for spec in &args.collections {
         let (name, dir) = spec
             .split_once('=')

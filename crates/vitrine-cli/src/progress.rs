@@ -27,10 +27,8 @@ impl Progress {
         if std::io::stderr().is_terminal() {
             let bar = ProgressBar::new(0);
             bar.set_style(
-                ProgressStyle::with_template(
-                    "{bar:40} {pos}/{len} images  {per_sec}  eta {eta}",
-                )
-                .unwrap_or_else(|_| ProgressStyle::default_bar()),
+                ProgressStyle::with_template("{bar:40} {pos}/{len} images  {per_sec}  eta {eta}")
+                    .unwrap_or_else(|_| ProgressStyle::default_bar()),
             );
             Progress::Bar(bar)
         } else {

@@ -91,7 +91,9 @@ impl Settings {
                 .or_else(|| {
                     let base = std::env::var_os("XDG_CONFIG_HOME")
                         .map(PathBuf::from)
-                        .or_else(|| std::env::var_os("HOME").map(|h| PathBuf::from(h).join(".config")))?;
+                        .or_else(|| {
+                            std::env::var_os("HOME").map(|h| PathBuf::from(h).join(".config"))
+                        })?;
                     let file = base.join("vitrine").join("vitrine.toml");
                     file.exists().then_some(file)
                 }),

@@ -22,6 +22,7 @@ impl Fixture {
         let fixture = Fixture {
             dir: tempfile::tempdir().unwrap(),
         };
+        std::fs::write(fixture.dir.path().join("vitrine.toml"), "").unwrap();
         let checkpoint = Path::new(env!("CARGO_MANIFEST_DIR"))
             .join("../vitrine-model/tests/fixtures/families/dinov2");
         let out = fixture.run(&[
@@ -37,7 +38,11 @@ impl Fixture {
             "--resize",
             "36",
         ]);
-        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
         fixture
     }
 
@@ -71,13 +76,21 @@ impl Fixture {
 
     fn index(&self) -> String {
         let out = self.run(&["index", self.images().to_str().unwrap()]);
-        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
         String::from_utf8(out.stdout).unwrap()
     }
 
     fn status(&self) -> Value {
         let out = self.run(&["status", "--errors", "--format", "json"]);
-        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
         serde_json::from_slice(&out.stdout).unwrap()
     }
 }
@@ -93,7 +106,7 @@ fn write_image(path: &Path, seed: u32) {
         let disc = if dx * dx + dy * dy < 120 { 120 } else { 0 };
         Rgb([
             stripe.wrapping_add((seed * 37) as u8),
-            disc + (x * 3) as u8,
+            (disc as u8).wrapping_add((x * 3) as u8),
             (y * 5) as u8 ^ (seed * 11) as u8,
         ])
     });
@@ -102,7 +115,9 @@ fn write_image(path: &Path, seed: u32) {
 
 fn count(line: &str, what: &str) -> usize {
     let pattern = format!(" {what}");
-    let end = line.find(&pattern).unwrap_or_else(|| panic!("no `{what}` in {line}"));
+    let end = line
+        .find(&pattern)
+        .unwrap_or_else(|| panic!("no `{what}` in {line}"));
     line[..end]
         .rsplit(|c: char| !c.is_ascii_digit())
         .next()
@@ -116,7 +131,10 @@ fn incremental_reindex_counts_exactly() {
     let fx = Fixture::new();
     for i in 0..12 {
         let split = ["train", "val", "test"][i % 3];
-        write_image(&fx.images().join(format!("{split}/cls{}/img{i}.png", i % 2)), i as u32);
+        write_image(
+            &fx.images().join(format!("{split}/cls{}/img{i}.png", i % 2)),
+            i as u32,
+        );
     }
     let first = fx.index();
     assert_eq!(count(&first, "new"), 12, "{first}");
@@ -158,11 +176,20 @@ fn bad_files_are_recorded_and_do_not_stop_the_run() {
     write_image(&dir.join("good1.png"), 1);
     write_image(&dir.join("good2.png"), 2);
     std::fs::write(dir.join("empty.jpg"), b"").unwrap();
-    std::fs::write(dir.join("notes.jpg"), b"this is a text file, not a picture\n").unwrap();
+    std::fs::write(
+        dir.join("notes.jpg"),
+        b"this is a text file, not a picture\n",
+    )
+    .unwrap();
     let mut jpeg = Vec::new();
-    image::DynamicImage::ImageRgb8(ImageBuffer::from_fn(64, 64, |x, y| Rgb([x as u8, y as u8, 9])))
-        .write_to(&mut std::io::Cursor::new(&mut jpeg), image::ImageFormat::Jpeg)
-        .unwrap();
+    image::DynamicImage::ImageRgb8(ImageBuffer::from_fn(64, 64, |x, y| {
+        Rgb([x as u8, y as u8, 9])
+    }))
+    .write_to(
+        &mut std::io::Cursor::new(&mut jpeg),
+        image::ImageFormat::Jpeg,
+    )
+    .unwrap();
     std::fs::write(dir.join("truncated.jpg"), &jpeg[..jpeg.len() / 2]).unwrap();
     std::fs::write(dir.join("bomb.png"), png_header_claiming(30_000, 30_000)).unwrap();
 
@@ -177,34 +204,56 @@ fn bad_files_are_recorded_and_do_not_stop_the_run() {
         .iter()
         .map(|e| {
             (
-                e["path"].as_str().unwrap().rsplit('/').next().unwrap().to_owned(),
+                e["path"]
+                    .as_str()
+                    .unwrap()
+                    .rsplit('/')
+                    .next()
+                    .unwrap()
+                    .to_owned(),
                 e["reason"].as_str().unwrap().to_owned(),
             )
         })
         .collect();
     assert!(reasons["empty.jpg"].contains("empty"), "{reasons:?}");
-    assert!(reasons["notes.jpg"].contains("not a recognised image"), "{reasons:?}");
-    assert!(reasons["truncated.jpg"].contains("truncated") || reasons["truncated.jpg"].contains("corrupt"), "{reasons:?}");
-    assert!(reasons["bomb.png"].contains("over the limit"), "{reasons:?}");
+    assert!(
+        reasons["notes.jpg"].contains("not a recognised image"),
+        "{reasons:?}"
+    );
+    assert!(
+        reasons["truncated.jpg"].contains("truncated")
+            || reasons["truncated.jpg"].contains("corrupt"),
+        "{reasons:?}"
+    );
+    assert!(
+        reasons["bomb.png"].contains("over the limit"),
+        "{reasons:?}"
+    );
     // Fixing a file clears its error on the next run.
     std::fs::remove_file(dir.join("notes.jpg")).unwrap();
     fx.index();
     assert_eq!(fx.status()["errors"], 3);
 }
 
-/// A PNG signature and IHDR chunk declaring `width × height`, then nothing:
-/// a decompression bomb must be refused from its header alone.
+/// A small PNG whose header declares `width × height`: a decompression bomb
+/// must be refused from its header, before any pixel is inflated.
 fn png_header_claiming(width: u32, height: u32) -> Vec<u8> {
-    let mut ihdr = Vec::new();
-    ihdr.extend_from_slice(b"IHDR");
-    ihdr.extend_from_slice(&width.to_be_bytes());
-    ihdr.extend_from_slice(&height.to_be_bytes());
-    ihdr.extend_from_slice(&[8, 2, 0, 0, 0]);
-    let crc = crc32(&ihdr);
+    let mut header = Vec::new();
+    header.extend_from_slice(&width.to_be_bytes());
+    header.extend_from_slice(&height.to_be_bytes());
+    header.extend_from_slice(&[8, 2, 0, 0, 0]);
     let mut png = b"\x89PNG\r\n\x1a\n".to_vec();
-    png.extend_from_slice(&13u32.to_be_bytes());
-    png.extend_from_slice(&ihdr);
-    png.extend_from_slice(&crc.to_be_bytes());
+    for (kind, data) in [
+        (&b"IHDR"[..], &header[..]),
+        (b"IDAT", &[0x78, 0x9c, 0x03, 0x00][..]),
+        (b"IEND", &[][..]),
+    ] {
+        let mut chunk = kind.to_vec();
+        chunk.extend_from_slice(data);
+        png.extend_from_slice(&(data.len() as u32).to_be_bytes());
+        png.extend_from_slice(&chunk);
+        png.extend_from_slice(&crc32(&chunk).to_be_bytes());
+    }
     png
 }
 
@@ -213,69 +262,115 @@ fn crc32(bytes: &[u8]) -> u32 {
     for &byte in bytes {
         crc ^= u32::from(byte);
         for _ in 0..8 {
-            crc = if crc & 1 != 0 { (crc >> 1) ^ 0xedb8_8320 } else { crc >> 1 };
+            crc = if crc & 1 != 0 {
+                (crc >> 1) ^ 0xedb8_8320
+            } else {
+                crc >> 1
+            };
         }
     }
     !crc
 }
 
-/// Everything a finished store says about its images, for comparison.
-fn store_contents(fx: &Fixture) -> Vec<(String, String)> {
-    let out = fx.run(&["duplicates", "--format", "json", "--threshold", "1.0"]);
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
-    let status = fx.status();
-    let mut contents: Vec<(String, String)> = status["labels"]
-        .as_object()
-        .unwrap()
-        .iter()
-        .map(|(k, v)| (k.clone(), v.to_string()))
-        .collect();
-    contents.push(("images".into(), status["images"].to_string()));
-    contents.push(("errors".into(), status["errors"].to_string()));
+/// Everything a finished store holds, keyed by path: record fields that do
+/// not depend on when a file was indexed, and the embedding.
+fn store_contents(fx: &Fixture) -> BTreeMap<String, (String, Vec<f32>)> {
+    let store = vitrine_store::Store::open(&fx.store()).unwrap();
+    let mut contents = BTreeMap::new();
+    for entry in store.records() {
+        let (id, record) = entry.unwrap();
+        let summary = format!(
+            "{:?} {:?} {:?} {:?} {}x{} {}",
+            record.split,
+            record.label,
+            record.content_hash,
+            record.pixel_hash,
+            record.width,
+            record.height,
+            record.byte_size
+        );
+        let embedding = store.embedding(id).unwrap().unwrap();
+        assert!(contents
+            .insert(record.rel_path.clone(), (summary, embedding))
+            .is_none());
+    }
+    assert_eq!(store.len(), contents.len(), "one record per image");
     contents
 }
 
 #[test]
 fn killed_runs_resume_to_the_same_store_as_a_clean_run() {
-    let fx = Fixture::new();
-    // Small commits so that kills land both between and inside commits.
-    std::fs::write(
-        fx.dir.path().join("vitrine.toml"),
-        "[index]\ncommit_every = 8\nbatch_size = 4\n",
-    )
-    .unwrap();
-    let n_images = 300;
-    for i in 0..n_images {
-        let split = ["train", "val", "test"][i % 3];
-        write_image(&fx.images().join(format!("{split}/c{}/p{i:03}.png", i % 4)), i as u32);
-    }
-    std::fs::write(fx.images().join("train/c0/broken.png"), b"nope").unwrap();
+    let small_commits = "[index]\ncommit_every = 8\nbatch_size = 4\n";
+    let n_images = 400;
+    let fill = |fx: &Fixture| {
+        // Small commits so that kills land both between and inside commits.
+        std::fs::write(fx.dir.path().join("vitrine.toml"), small_commits).unwrap();
+        for i in 0..n_images {
+            let split = ["train", "val", "test"][i % 3];
+            write_image(
+                &fx.images().join(format!("{split}/c{}/p{i:03}.png", i % 4)),
+                i as u32,
+            );
+        }
+        std::fs::write(fx.images().join("train/c0/broken.png"), b"nope").unwrap();
+    };
 
-    for delay_ms in [150u64, 400, 700, 1000, 1500] {
+    let clean = Fixture::new();
+    fill(&clean);
+    let started = std::time::Instant::now();
+    clean.index();
+    let clean_run = started.elapsed();
+    println!("a clean run takes {:.2} s", clean_run.as_secs_f64());
+    let expected = store_contents(&clean);
+
+    let fx = Fixture::new();
+    fill(&fx);
+    let mut killed_while_running = 0;
+    for _ in 0..6 {
         let mut child = fx
             .command(&["index", fx.images().to_str().unwrap()])
             .stdout(Stdio::null())
             .stderr(Stdio::null())
             .spawn()
             .unwrap();
-        std::thread::sleep(Duration::from_millis(delay_ms));
+        std::thread::sleep(clean_run / 4);
+        if child.try_wait().unwrap().is_none() {
+            killed_while_running += 1;
+        }
         let _ = child.kill(); // SIGKILL on Unix
         let _ = child.wait();
         // The store opens after every kill.
         let out = fx.run(&["status", "--format", "json"]);
         assert!(
             out.status.success(),
-            "store did not open after a kill at {delay_ms} ms: {}",
+            "store did not open after a kill: {}",
             String::from_utf8_lossy(&out.stderr)
         );
     }
+    assert!(
+        killed_while_running >= 3,
+        "only {killed_while_running} kills hit a running index"
+    );
     let last = fx.index();
     assert_eq!(count(&last, "failed"), 1, "{last}");
-    let resumed = store_contents(&fx);
 
-    let clean = Fixture::new();
-    std::fs::rename(fx.images(), clean.images()).unwrap();
-    clean.index();
-    assert_eq!(resumed, store_contents(&clean));
-    assert_eq!(fx.status()["images"], n_images);
+    let resumed = store_contents(&fx);
+    assert_eq!(resumed.len(), n_images);
+    assert_eq!(
+        resumed.keys().collect::<Vec<_>>(),
+        expected.keys().collect::<Vec<_>>()
+    );
+    for (path, (summary, embedding)) in &resumed {
+        let (expected_summary, expected_embedding) = &expected[path];
+        assert_eq!(summary, expected_summary, "{path}");
+        // Batches differ between a resumed and a clean run; a forward pass
+        // may differ in the last bits with batch composition.
+        let max_diff = embedding
+            .iter()
+            .zip(expected_embedding)
+            .map(|(a, b)| (a - b).abs())
+            .fold(0f32, f32::max);
+        assert!(max_diff < 1e-5, "{path}: embeddings differ by {max_diff}");
+    }
+    assert_eq!(fx.status()["errors"], 1);
 }

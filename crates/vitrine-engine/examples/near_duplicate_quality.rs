@@ -91,13 +91,20 @@ fn photo_paths(python: &str) -> Result<Vec<PathBuf>> {
 fn low_texture_images(seed: u64) -> Vec<(String, RgbImage)> {
     let mut rng = ChaCha8Rng::seed_from_u64(seed);
     let (w, h) = (640u32, 480u32);
-    let colour = |rng: &mut ChaCha8Rng| -> [f32; 3] { std::array::from_fn(|_| rng.random_range(0.0..255.0)) };
+    let colour = |rng: &mut ChaCha8Rng| -> [f32; 3] {
+        std::array::from_fn(|_| rng.random_range(0.0..255.0))
+    };
     let mut out = Vec::new();
     for i in 0..8 {
         let angle = (i as f32 * 45.0 + rng.random_range(-10.0..10.0)).to_radians();
-        let stops: Vec<[f32; 3]> = (0..rng.random_range(2..4)).map(|_| colour(&mut rng)).collect();
+        let stops: Vec<[f32; 3]> = (0..rng.random_range(2..4))
+            .map(|_| colour(&mut rng))
+            .collect();
         let radial = i % 3 == 2;
-        let (cx, cy) = (rng.random_range(0.2..0.8) * w as f32, rng.random_range(0.2..0.8) * h as f32);
+        let (cx, cy) = (
+            rng.random_range(0.2..0.8) * w as f32,
+            rng.random_range(0.2..0.8) * h as f32,
+        );
         let image = RgbImage::from_fn(w, h, |x, y| {
             let t = if radial {
                 ((x as f32 - cx).hypot(y as f32 - cy) / (w as f32 * 0.8)).min(1.0)
@@ -108,7 +115,9 @@ fn low_texture_images(seed: u64) -> Vec<(String, RgbImage)> {
             let span = t * (stops.len() - 1) as f32;
             let k = (span.floor() as usize).min(stops.len() - 2);
             let f = span - k as f32;
-            Rgb(std::array::from_fn(|c| (stops[k][c] * (1.0 - f) + stops[k + 1][c] * f) as u8))
+            Rgb(std::array::from_fn(|c| {
+                (stops[k][c] * (1.0 - f) + stops[k + 1][c] * f) as u8
+            }))
         });
         out.push((format!("gradient{i}"), image));
     }
@@ -123,8 +132,8 @@ fn low_texture_images(seed: u64) -> Vec<(String, RgbImage)> {
             for y in y0..(y0 + size).min(h) {
                 for x in x0..(x0 + size).min(w) {
                     let r = size as f32 / 2.0;
-                    let inside = !round
-                        || (x as f32 - x0 as f32 - r).hypot(y as f32 - y0 as f32 - r) <= r;
+                    let inside =
+                        !round || (x as f32 - x0 as f32 - r).hypot(y as f32 - y0 as f32 - r) <= r;
                     if inside {
                         image.put_pixel(x, y, fill);
                     }
@@ -134,8 +143,16 @@ fn low_texture_images(seed: u64) -> Vec<(String, RgbImage)> {
         out.push((format!("flat{i}"), image));
     }
     for i in 0..8 {
-        let top = [rng.random_range(20.0..80.0), rng.random_range(60.0..130.0), rng.random_range(150.0..230.0)];
-        let bottom = [rng.random_range(170.0..230.0), rng.random_range(190.0..235.0), rng.random_range(225.0..255.0)];
+        let top = [
+            rng.random_range(20.0..80.0),
+            rng.random_range(60.0..130.0),
+            rng.random_range(150.0..230.0),
+        ];
+        let bottom = [
+            rng.random_range(170.0..230.0),
+            rng.random_range(190.0..235.0),
+            rng.random_range(225.0..255.0),
+        ];
         // Soft noise: a coarse random grid, bilinearly upsampled.
         let grid: Vec<f32> = (0..8 * 8).map(|_| rng.random_range(-1.0..1.0)).collect();
         let amplitude = rng.random_range(8.0..25.0);
@@ -170,15 +187,26 @@ fn embed_items(
             .collect::<Result<_, _>>()?;
         let with_evidence = ImageEvidence::of_prepared(encoder, &prepared)?;
         let means = mean_encoder.embed(&prepared)?;
-        for (((source, edit, _), (cls, evidence)), mean) in chunk.iter().zip(with_evidence).zip(means) {
-            items.push(Item { source: *source, edit: *edit, cls, mean, evidence });
+        for (((source, edit, _), (cls, evidence)), mean) in
+            chunk.iter().zip(with_evidence).zip(means)
+        {
+            items.push(Item {
+                source: *source,
+                edit: *edit,
+                cls,
+                mean,
+                evidence,
+            });
         }
     }
     Ok(items)
 }
 
 /// Pictures of a set: each original then its copies under `edits`.
-fn with_copies(originals: &[RgbImage], edits: &[Edit]) -> Result<Vec<(usize, Option<Edit>, RgbImage)>> {
+fn with_copies(
+    originals: &[RgbImage],
+    edits: &[Edit],
+) -> Result<Vec<(usize, Option<Edit>, RgbImage)>> {
     let mut out = Vec::new();
     for (source, rgb) in originals.iter().enumerate() {
         out.push((source, None, rgb.clone()));
@@ -243,7 +271,8 @@ fn evaluate(items: &[Item], rule: &Rule, options: &VerifyOptions) -> Outcome {
         let accept = match rule {
             Rule::Plain { threshold } => cosine >= *threshold,
             Rule::Verified { candidate } => {
-                cosine >= *candidate && compare(&items[i].evidence, &items[j].evidence, options).confirmed
+                cosine >= *candidate
+                    && compare(&items[i].evidence, &items[j].evidence, options).confirmed
             }
         };
         if accept {
@@ -253,7 +282,11 @@ fn evaluate(items: &[Item], rule: &Rule, options: &VerifyOptions) -> Outcome {
             parent[a] = b;
         }
     }
-    let original_of = |source: usize| items.iter().position(|it| it.source == source && it.edit.is_none());
+    let original_of = |source: usize| {
+        items
+            .iter()
+            .position(|it| it.source == source && it.edit.is_none())
+    };
     let copies: Vec<usize> = (0..n).filter(|&i| items[i].edit.is_some()).collect();
     let found = copies
         .iter()
@@ -270,7 +303,11 @@ fn evaluate(items: &[Item], rule: &Rule, options: &VerifyOptions) -> Outcome {
         }
     }
     Outcome {
-        precision: if kept == 0 { 1.0 } else { correct as f64 / kept as f64 },
+        precision: if kept == 0 {
+            1.0
+        } else {
+            correct as f64 / kept as f64
+        },
         recall: found as f64 / copies.len().max(1) as f64,
         merged_originals: merged,
     }
@@ -285,7 +322,15 @@ fn score_spread(items: &[Item], candidate: f32, options: &VerifyOptions) {
         }
         v.sort_by(f32::total_cmp);
         let q = |p: f64| v[((v.len() - 1) as f64 * p).round() as usize];
-        format!("n={:4} min {:.2} p10 {:.2} p50 {:.2} p90 {:.2} max {:.2}", v.len(), q(0.0), q(0.1), q(0.5), q(0.9), q(1.0))
+        format!(
+            "n={:4} min {:.2} p10 {:.2} p50 {:.2} p90 {:.2} max {:.2}",
+            v.len(),
+            q(0.0),
+            q(0.1),
+            q(0.5),
+            q(0.9),
+            q(1.0)
+        )
     };
     let mut positives = Vec::new();
     let mut negatives = Vec::new();
@@ -312,16 +357,25 @@ fn score_spread(items: &[Item], candidate: f32, options: &VerifyOptions) {
         }
     }
     println!("    copy-original scores:   {}", quantiles(positives));
-    println!("    distinct (cos>={candidate:.2}): {}", quantiles(negatives));
+    println!(
+        "    distinct (cos>={candidate:.2}): {}",
+        quantiles(negatives)
+    );
 }
 
 fn per_edit_table(items: &[Item], options: &VerifyOptions) {
-    println!("    {:<14} {:>8} {:>8} {:>9}", "edit", "cos min", "cos mean", "verified");
+    println!(
+        "    {:<14} {:>8} {:>8} {:>9}",
+        "edit", "cos min", "cos mean", "verified"
+    );
     for edit in MILD_EDITS.iter().chain(STRONG_EDITS) {
         let mut cos = Vec::new();
         let mut verified = 0;
         for item in items.iter().filter(|it| it.edit == Some(*edit)) {
-            let Some(original) = items.iter().find(|o| o.source == item.source && o.edit.is_none()) else {
+            let Some(original) = items
+                .iter()
+                .find(|o| o.source == item.source && o.edit.is_none())
+            else {
                 continue;
             };
             cos.push(dot(&item.cls, &original.cls));
@@ -332,7 +386,14 @@ fn per_edit_table(items: &[Item], options: &VerifyOptions) {
         }
         let min = cos.iter().copied().fold(f32::INFINITY, f32::min);
         let mean = cos.iter().sum::<f32>() / cos.len() as f32;
-        println!("    {:<14} {:>8.3} {:>8.3} {:>5}/{:<3}", edit.name(), min, mean, verified, cos.len());
+        println!(
+            "    {:<14} {:>8.3} {:>8.3} {:>5}/{:<3}",
+            edit.name(),
+            min,
+            mean,
+            verified,
+            cos.len()
+        );
     }
 }
 
@@ -342,7 +403,9 @@ fn pooling_table(label: &str, items: &[Item]) {
     let poolings: [(&str, fn(&Item, &Item) -> f32); 3] = [
         ("cls", |a, b| dot(&a.cls, &b.cls)),
         ("mean", |a, b| dot(&a.mean, &b.mean)),
-        ("cls+mean", |a, b| 0.5 * (dot(&a.cls, &b.cls) + dot(&a.mean, &b.mean))),
+        ("cls+mean", |a, b| {
+            0.5 * (dot(&a.cls, &b.cls) + dot(&a.mean, &b.mean))
+        }),
     ];
     for (name, similarity) in poolings {
         let mut positives = Vec::new();
@@ -358,8 +421,10 @@ fn pooling_table(label: &str, items: &[Item]) {
             }
         }
         let max_negative = negatives.iter().copied().fold(f32::NEG_INFINITY, f32::max);
-        let recall_at = |t: f32| positives.iter().filter(|&&s| s >= t).count() as f64 / positives.len() as f64;
-        let at_full_precision = positives.iter().filter(|&&s| s > max_negative).count() as f64 / positives.len() as f64;
+        let recall_at =
+            |t: f32| positives.iter().filter(|&&s| s >= t).count() as f64 / positives.len() as f64;
+        let at_full_precision =
+            positives.iter().filter(|&&s| s > max_negative).count() as f64 / positives.len() as f64;
         let mut best = 0.0f64;
         for step in 0..=400 {
             let t = step as f32 / 400.0;
@@ -386,21 +451,39 @@ fn main() -> Result<()> {
     let photo_files = photo_paths(&python)?;
     let mut photos = Vec::new();
     for path in &photo_files {
-        photos.push(decode_path(path, &DecodeOptions::default()).with_context(|| path.display().to_string())?.rgb);
+        photos.push(
+            decode_path(path, &DecodeOptions::default())
+                .with_context(|| path.display().to_string())?
+                .rgb,
+        );
     }
-    let low_texture: Vec<RgbImage> = low_texture_images(7).into_iter().map(|(_, rgb)| rgb).collect();
+    let low_texture: Vec<RgbImage> = low_texture_images(7)
+        .into_iter()
+        .map(|(_, rgb)| rgb)
+        .collect();
     if photos.is_empty() {
         bail!("no photos found");
     }
-    println!("{} photos, {} low-texture pictures", photos.len(), low_texture.len());
+    println!(
+        "{} photos, {} low-texture pictures",
+        photos.len(),
+        low_texture.len()
+    );
 
     let mut all_items = Vec::new();
     for (label, originals) in [("photos", &photos), ("low-texture", &low_texture)] {
         for (severity, edits) in [("mild", MILD_EDITS), ("strong", STRONG_EDITS)] {
             let started = std::time::Instant::now();
             let items = embed_items(&encoder, &mean_encoder, &with_copies(originals, edits)?)?;
-            println!("\n== {label}, {severity} edits: {} pictures ({:.0} s to embed)", items.len(), started.elapsed().as_secs_f64());
-            println!("    {:<22} {:>9} {:>7} {:>16}", "rule", "precision", "recall", "merged originals");
+            println!(
+                "\n== {label}, {severity} edits: {} pictures ({:.0} s to embed)",
+                items.len(),
+                started.elapsed().as_secs_f64()
+            );
+            println!(
+                "    {:<22} {:>9} {:>7} {:>16}",
+                "rule", "precision", "recall", "merged originals"
+            );
             let rules = [
                 Rule::Plain { threshold: 0.60 },
                 Rule::Plain { threshold: 0.70 },
@@ -413,7 +496,13 @@ fn main() -> Result<()> {
             ];
             for rule in &rules {
                 let o = evaluate(&items, rule, &options);
-                println!("    {:<22} {:>9.3} {:>7.3} {:>16}", rule.name(), o.precision, o.recall, o.merged_originals);
+                println!(
+                    "    {:<22} {:>9.3} {:>7.3} {:>16}",
+                    rule.name(),
+                    o.precision,
+                    o.recall,
+                    o.merged_originals
+                );
             }
             score_spread(&items, 0.5, &options);
             per_edit_table(&items, &options);
@@ -441,9 +530,23 @@ fn main() -> Result<()> {
         std::fs::copy(path, folder.join(name))?;
     }
     let mut store = Store::create_or_open(&work.path().join("store"), &fingerprint_of(&encoder))?;
-    index_roots(&mut store, &encoder, &[folder], &IndexOptions::default(), &NoProgress)?;
+    index_roots(
+        &mut store,
+        &encoder,
+        &[folder],
+        &IndexOptions::default(),
+        &NoProgress,
+    )?;
     let catalog = Catalog::load(&store)?;
-    let report = calibrate(&store, &catalog, &encoder, &CalibrationOptions { sample: 1000, ..CalibrationOptions::default() })?;
+    let report = calibrate(
+        &store,
+        &catalog,
+        &encoder,
+        &CalibrationOptions {
+            sample: 1000,
+            ..CalibrationOptions::default()
+        },
+    )?;
     println!("{}", serde_json::to_string_pretty(&report)?);
     Ok(())
 }

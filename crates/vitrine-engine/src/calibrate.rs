@@ -70,8 +70,12 @@ pub const MILD_EDITS: &[Edit] = &[
     Edit::Jpeg { quality: 30 },
     Edit::Resize { percent: 50 },
     Edit::Resize { percent: 80 },
-    Edit::Crop { removed_percent: 10 },
-    Edit::Crop { removed_percent: 25 },
+    Edit::Crop {
+        removed_percent: 10,
+    },
+    Edit::Crop {
+        removed_percent: 25,
+    },
     Edit::Brightness { percent: 20 },
     Edit::Brightness { percent: -20 },
     Edit::Contrast { percent: 20 },
@@ -84,8 +88,12 @@ pub const MILD_EDITS: &[Edit] = &[
 
 /// The strong edits.
 pub const STRONG_EDITS: &[Edit] = &[
-    Edit::Crop { removed_percent: 40 },
-    Edit::Crop { removed_percent: 50 },
+    Edit::Crop {
+        removed_percent: 40,
+    },
+    Edit::Crop {
+        removed_percent: 50,
+    },
     Edit::Rotate { degrees: 10.0 },
     Edit::Rotate { degrees: -15.0 },
     Edit::HueShift { degrees: 90.0 },
@@ -370,8 +378,7 @@ impl SimilaritySample {
     pub fn report(&self, options: &CalibrationOptions) -> CalibrationReport {
         let mild: Vec<f32> = self.similarities_of(Severity::Mild);
         let strong: Vec<f32> = self.similarities_of(Severity::Strong);
-        let share_at_or_above =
-            |values: &[f32], t: f32| values.iter().filter(|&&v| v >= t).count();
+        let share_at_or_above = |values: &[f32], t: f32| values.iter().filter(|&&v| v >= t).count();
         let recall = |values: &[f32], t: f32| {
             if values.is_empty() {
                 0.0
@@ -481,8 +488,8 @@ pub fn calibrate(
         ));
     }
     let mut rng = ChaCha8Rng::seed_from_u64(options.seed);
-    let mut rows = sample_indices(&mut rng, catalog.len(), options.sample.min(catalog.len()))
-        .into_vec();
+    let mut rows =
+        sample_indices(&mut rng, catalog.len(), options.sample.min(catalog.len())).into_vec();
     rows.sort_unstable();
 
     let mut sample = SimilaritySample::default();
@@ -583,13 +590,19 @@ mod tests {
         assert_eq!(rotate(&original, 0.0), original);
         let grey = RgbImage::from_pixel(4, 4, Rgb([90, 90, 90]));
         // Grey has no chroma: any hue rotation leaves it grey.
-        assert!(hue_shift(&grey, 90.0).pixels().all(|p| p.0.iter().all(|&c| c.abs_diff(90) <= 1)));
+        assert!(hue_shift(&grey, 90.0)
+            .pixels()
+            .all(|p| p.0.iter().all(|&c| c.abs_diff(90) <= 1)));
     }
 
     #[test]
     fn tiny_images_are_refused_not_panicked_on() {
         let tiny = RgbImage::new(3, 3);
-        assert!(Edit::Crop { removed_percent: 50 }.apply(&tiny).is_err());
+        assert!(Edit::Crop {
+            removed_percent: 50
+        }
+        .apply(&tiny)
+        .is_err());
     }
 
     #[test]

@@ -39,9 +39,7 @@ impl Catalog {
         let dim = store.fingerprint().dim;
         let mut records = Vec::with_capacity(ids.len());
         for &id in &ids {
-            let record = store
-                .record(id)?
-                .ok_or(EngineError::UnknownImage(id))?;
+            let record = store.record(id)?.ok_or(EngineError::UnknownImage(id))?;
             records.push(record);
         }
         let row_of = ids.iter().enumerate().map(|(row, &id)| (id, row)).collect();

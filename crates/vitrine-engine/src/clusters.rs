@@ -95,8 +95,13 @@ pub fn cluster_collection(
     };
     let invalid = |e: crate::analytics::AnalyticsError| EngineError::InvalidArgument(e.to_string());
     let result = kmeans(&catalog.embeddings, catalog.dim, &kmeans_options).map_err(invalid)?;
-    let summaries = summarise_clusters(&catalog.embeddings, catalog.dim, &result.assignments, n_clusters)
-        .map_err(invalid)?;
+    let summaries = summarise_clusters(
+        &catalog.embeddings,
+        catalog.dim,
+        &result.assignments,
+        n_clusters,
+    )
+    .map_err(invalid)?;
     let mut members: Vec<Vec<usize>> = vec![Vec::new(); n_clusters];
     for (row, &cluster) in result.assignments.iter().enumerate() {
         members[cluster].push(row);
@@ -107,7 +112,8 @@ pub fn cluster_collection(
         let centroid = &result.centroids[index * catalog.dim..(index + 1) * catalog.dim];
         let mut ordered = rows.clone();
         ordered.sort_by(|&a, &b| {
-            dot(catalog.embedding_at(b), centroid).total_cmp(&dot(catalog.embedding_at(a), centroid))
+            dot(catalog.embedding_at(b), centroid)
+                .total_cmp(&dot(catalog.embedding_at(a), centroid))
         });
         let labelled: Vec<&String> = rows
             .iter()

@@ -195,7 +195,9 @@ struct Candidate {
 /// The cosine from which neighbours are candidates.
 fn candidate_floor(options: &DuplicateOptions, verifier: Option<&PairVerifier>) -> f32 {
     if options.verify && verifier.is_some() {
-        options.candidate_threshold.min(options.near_duplicate_threshold)
+        options
+            .candidate_threshold
+            .min(options.near_duplicate_threshold)
     } else {
         options.near_duplicate_threshold
     }
@@ -209,7 +211,8 @@ fn judge(
     candidates: &[Candidate],
 ) -> Result<(Vec<Option<Verification>>, VerificationSummary), EngineError> {
     let threshold = options.near_duplicate_threshold;
-    let by_threshold = |c: &Candidate| (c.similarity >= threshold).then_some(Verification::ThresholdOnly);
+    let by_threshold =
+        |c: &Candidate| (c.similarity >= threshold).then_some(Verification::ThresholdOnly);
     let mut summary = VerificationSummary {
         candidate_pairs: candidates.len(),
         ..VerificationSummary::default()
@@ -229,7 +232,10 @@ fn judge(
     };
     summary.applied = true;
     let path_of = |row: usize| catalog.absolute_path(catalog.ids[row]);
-    let rows: BTreeSet<usize> = candidates.iter().flat_map(|c| [c.first, c.second]).collect();
+    let rows: BTreeSet<usize> = candidates
+        .iter()
+        .flat_map(|c| [c.first, c.second])
+        .collect();
     let paths: Vec<PathBuf> = rows.into_iter().filter_map(path_of).collect();
     verifier.prepare(&paths)?;
     let checks: Vec<Option<PairCheck>> = candidates
@@ -529,7 +535,13 @@ pub fn find_leaks_verified(
                         .map(|&other| (other, DuplicateTier::Pixels))
                 });
             if let Some((other, tier)) = exact {
-                return Ok(Ok(leak(row, other, tier, catalog.similarity(row, other), None)));
+                return Ok(Ok(leak(
+                    row,
+                    other,
+                    tier,
+                    catalog.similarity(row, other),
+                    None,
+                )));
             }
             let depth = if floor < duplicates.near_duplicate_threshold {
                 duplicates.neighbours_per_image.max(1)

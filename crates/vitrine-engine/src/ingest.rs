@@ -10,9 +10,7 @@ use rayon::prelude::*;
 use vitrine_imaging::{decode_bytes, preprocess, DecodeOptions, ImagingError, PreparedImage};
 use vitrine_model::config::ModelSpec;
 use vitrine_model::encoder::Encoder;
-use vitrine_store::{
-    ChangeSet, FileError, ImageId, ImageRecord, ModelFingerprint, Store, Upsert,
-};
+use vitrine_store::{ChangeSet, FileError, ImageId, ImageRecord, ModelFingerprint, Store, Upsert};
 
 use crate::error::EngineError;
 use crate::splits::SplitRule;
@@ -116,7 +114,11 @@ fn has_image_extension(rel_path: &str) -> bool {
     Path::new(rel_path)
         .extension()
         .and_then(|e| e.to_str())
-        .is_some_and(|e| IMAGE_EXTENSIONS.iter().any(|known| e.eq_ignore_ascii_case(known)))
+        .is_some_and(|e| {
+            IMAGE_EXTENSIONS
+                .iter()
+                .any(|known| e.eq_ignore_ascii_case(known))
+        })
 }
 
 /// What became of one file of a chunk.
@@ -233,7 +235,11 @@ fn index_one_root(
         })
         .collect();
     report.failed += walk_errors.len();
-    let problem_paths: HashSet<&str> = walked.problems.iter().map(|p| p.rel_path.as_str()).collect();
+    let problem_paths: HashSet<&str> = walked
+        .problems
+        .iter()
+        .map(|p| p.rel_path.as_str())
+        .collect();
 
     if !walk_errors.is_empty() {
         store.commit(ChangeSet {
@@ -308,7 +314,6 @@ fn embed_chunk(
             }
         })
         .collect();
-
 
     let mut changes = ChangeSet::default();
     let mut to_embed: Vec<Decoded> = Vec::new();
@@ -393,7 +398,10 @@ fn decode_one(
     let content_hash = *blake3::hash(&bytes).as_bytes();
     let decoded = decode_bytes(&bytes, decode_options).map_err(|e| match e {
         ImagingError::NotAnImage | ImagingError::EmptyFile
-            if !has_image_extension(&pending.file.rel_path) => None,
+            if !has_image_extension(&pending.file.rel_path) =>
+        {
+            None
+        }
         e => Some(fail(e.to_string())),
     })?;
     let mut pixel_hasher = blake3::Hasher::new();

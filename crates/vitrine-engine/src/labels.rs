@@ -60,9 +60,8 @@ fn labelled_neighbours(
     k: usize,
 ) -> Result<Vec<VotingNeighbour<String>>, EngineError> {
     let own_id = catalog.ids[row];
-    let accepts = |id: ImageId| {
-        id != own_id && catalog.record(id).is_some_and(|r| r.label.is_some())
-    };
+    let accepts =
+        |id: ImageId| id != own_id && catalog.record(id).is_some_and(|r| r.label.is_some());
     let hits = store.search(catalog.embedding_at(row), k, Some(&accepts))?;
     Ok(hits
         .into_iter()

@@ -50,7 +50,8 @@ impl SplitRule {
                 .position(|h| h.trim().eq_ignore_ascii_case(name))
                 .ok_or_else(|| bad(format!("missing column `{name}`")))
         };
-        let (path_col, split_col, label_col) = (column("path")?, column("split")?, column("label")?);
+        let (path_col, split_col, label_col) =
+            (column("path")?, column("split")?, column("label")?);
         let mut entries = HashMap::new();
         for (line, row) in reader.records().enumerate() {
             let row = row.map_err(|e| bad(format!("row {}: {e}", line + 2)))?;
@@ -119,7 +120,11 @@ mod tests {
     fn manifest() {
         let dir = tempfile::tempdir().unwrap();
         let path = dir.path().join("m.csv");
-        std::fs::write(&path, "path,split,label\na/b.jpg,validation,vase\nc.png,,\n").unwrap();
+        std::fs::write(
+            &path,
+            "path,split,label\na/b.jpg,validation,vase\nc.png,,\n",
+        )
+        .unwrap();
         let rule = SplitRule::from_manifest(&path).unwrap();
         assert_eq!(
             rule.assign("a/b.jpg"),

@@ -135,7 +135,10 @@ impl SimilarityTransform {
             return None;
         }
         let mean = |pick: fn(&([f32; 2], [f32; 2])) -> [f32; 2]| {
-            let sum = pairs.iter().map(pick).fold([0.0, 0.0], |s, v| [s[0] + v[0], s[1] + v[1]]);
+            let sum = pairs
+                .iter()
+                .map(pick)
+                .fold([0.0, 0.0], |s, v| [s[0] + v[0], s[1] + v[1]]);
             [sum[0] / n, sum[1] / n]
         };
         let (mp, mq) = (mean(|pair| pair.0), mean(|pair| pair.1));
@@ -219,27 +222,71 @@ fn grey_thumbnail(image: &PreparedImage, mean: &[f32; 3], std: &[f32; 3]) -> Vec
     thumb
 }
 
+/// Cosine similarities of every token of `a` with every token of `b`,
+/// `na × nb` row-major (tokens are unit vectors).
+fn token_similarities(a: &ImageEvidence, b: &ImageEvidence) -> Vec<f32> {
+    let (na, nb, dim) = (a.patch_count(), b.patch_count(), a.tokens.dim);
+    let mut scores = vec![0f32; na * nb];
+    if b.tokens.dim != dim
+        || a.tokens.normalised.len() != na * dim
+        || b.tokens.normalised.len() != nb * dim
+    {
+        return scores;
+    }
+    // SAFETY: `a` is na x dim row-major, `b` is nb x dim row-major (read as
+    // its transpose, dim x nb, via the strides) and `scores` is na x nb
+    // row-major; the lengths were checked above, so every index the kernel
+    // touches is inside the three buffers.
+    unsafe {
+        gemm::gemm(
+            na,
+            nb,
+            dim,
+            scores.as_mut_ptr(),
+            1,
+            nb as isize,
+            false,
+            a.tokens.normalised.as_ptr(),
+            1,
+            dim as isize,
+            b.tokens.normalised.as_ptr(),
+            dim as isize,
+            1,
+            0.0,
+            1.0,
+            false,
+            false,
+            false,
+            gemm::Parallelism::None,
+        );
+    }
+    scores
+}
+
 /// Pairs `(index in a, index in b)` that are each other's nearest token.
-fn mutual_nearest(a: &ImageEvidence, b: &ImageEvidence, min_similarity: f32) -> Vec<(usize, usize)> {
+fn mutual_nearest(
+    a: &ImageEvidence,
+    b: &ImageEvidence,
+    min_similarity: f32,
+) -> Vec<(usize, usize)> {
     let (na, nb) = (a.patch_count(), b.patch_count());
+    let scores = token_similarities(a, b);
     let mut best_for_a = vec![(usize::MAX, f32::NEG_INFINITY); na];
     let mut best_for_b = vec![(usize::MAX, f32::NEG_INFINITY); nb];
-    for i in 0..na {
-        let ta = a.token(i);
-        for (j, best_b) in best_for_b.iter_mut().enumerate() {
-            let s = crate::catalog::dot(ta, b.token(j));
+    for (i, row) in scores.chunks_exact(nb.max(1)).enumerate() {
+        for (j, &s) in row.iter().enumerate() {
             if s > best_for_a[i].1 {
                 best_for_a[i] = (j, s);
             }
-            if s > best_b.1 {
-                *best_b = (i, s);
+            if s > best_for_b[j].1 {
+                best_for_b[j] = (i, s);
             }
         }
     }
     best_for_a
         .iter()
         .enumerate()
-        .filter(|&(i, &(j, s))| s >= min_similarity && best_for_b[j].0 == i)
+        .filter(|&(i, &(j, s))| s >= min_similarity && best_for_b.get(j).is_some_and(|b| b.0 == i))
         .map(|(i, &(j, _))| (i, j))
         .collect()
 }
@@ -284,7 +331,9 @@ fn fit_transform(
     let mut rng = ChaCha8Rng::seed_from_u64(n as u64);
     let all_pairs = n * (n - 1) / 2;
     let draws: Vec<(usize, usize)> = if all_pairs <= RANSAC_DRAWS {
-        (0..n).flat_map(|i| (i + 1..n).map(move |j| (i, j))).collect()
+        (0..n)
+            .flat_map(|i| (i + 1..n).map(move |j| (i, j)))
+            .collect()
     } else {
         (0..RANSAC_DRAWS)
             .map(|_| (rng.random_range(0..n), rng.random_range(0..n)))
@@ -545,7 +594,9 @@ mod tests {
 
     #[test]
     fn plane_removal_leaves_nothing_of_a_ramp() {
-        let positions: Vec<[f32; 2]> = (0..100).map(|i| [(i % 10) as f32, (i / 10) as f32]).collect();
+        let positions: Vec<[f32; 2]> = (0..100)
+            .map(|i| [(i % 10) as f32, (i / 10) as f32])
+            .collect();
         let ramp = positions.iter().map(|p| 0.3 + 0.02 * p[0] - 0.01 * p[1]);
         let residual = plane_residual(&positions, ramp);
         assert!(residual.iter().all(|r| r.abs() < 1e-5));

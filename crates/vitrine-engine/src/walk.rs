@@ -53,10 +53,12 @@ fn build_ignore_set(patterns: &[String]) -> Result<GlobSet, EngineError> {
         })?;
         builder.add(glob);
     }
-    builder.build().map_err(|source| EngineError::BadIgnorePattern {
-        pattern: patterns.join(", "),
-        message: source.to_string(),
-    })
+    builder
+        .build()
+        .map_err(|source| EngineError::BadIgnorePattern {
+            pattern: patterns.join(", "),
+            message: source.to_string(),
+        })
 }
 
 fn relative_string(root: &Path, path: &Path) -> String {

@@ -64,11 +64,22 @@ fn photos(python: &str) -> Result<Vec<PathBuf>> {
         python,
         "import sklearn, os; print(os.path.join(os.path.dirname(sklearn.__file__), 'datasets', 'images'))",
     )?;
-    let mut paths: Vec<PathBuf> = ["astronaut.png", "chelsea.png", "coffee.png", "rocket.jpg", "hubble_deep_field.jpg", "camera.png"]
-        .iter()
-        .map(|name| skimage.join(name))
-        .collect();
-    paths.extend(["china.jpg", "flower.jpg"].iter().map(|name| sklearn.join(name)));
+    let mut paths: Vec<PathBuf> = [
+        "astronaut.png",
+        "chelsea.png",
+        "coffee.png",
+        "rocket.jpg",
+        "hubble_deep_field.jpg",
+        "camera.png",
+    ]
+    .iter()
+    .map(|name| skimage.join(name))
+    .collect();
+    paths.extend(
+        ["china.jpg", "flower.jpg"]
+            .iter()
+            .map(|name| sklearn.join(name)),
+    );
     Ok(paths)
 }
 
@@ -76,13 +87,17 @@ fn photos(python: &str) -> Result<Vec<PathBuf>> {
 /// edits keep their artefacts) into `<folder>/<photo>/`.
 fn write_collection(photos: &[PathBuf], folder: &Path) -> Result<()> {
     for path in photos {
-        let stem = path.file_stem().context("photo without a name")?.to_string_lossy();
+        let stem = path
+            .file_stem()
+            .context("photo without a name")?
+            .to_string_lossy();
         let dir = folder.join(stem.as_ref());
         std::fs::create_dir_all(&dir)?;
         let original = decode_path(path, &DecodeOptions::default())?.rgb;
         original.save(dir.join("original.png"))?;
         for edit in MILD_EDITS {
-            edit.apply(&original)?.save(dir.join(format!("{}.png", edit.name())))?;
+            edit.apply(&original)?
+                .save(dir.join(format!("{}.png", edit.name())))?;
         }
     }
     Ok(())
@@ -94,7 +109,11 @@ fn score(report: &DuplicateReport, photos: usize) -> (f64, Vec<Vec<String>>) {
     let mut found = 0;
     let mut mixed = Vec::new();
     for group in &report.groups {
-        let paths: Vec<&str> = group.members.iter().map(|m| m.image.path.as_str()).collect();
+        let paths: Vec<&str> = group
+            .members
+            .iter()
+            .map(|m| m.image.path.as_str())
+            .collect();
         let mut per_photo: HashMap<String, usize> = HashMap::new();
         for path in &paths {
             *per_photo.entry(photo_of(path)).or_default() += 1;
@@ -103,7 +122,9 @@ fn score(report: &DuplicateReport, photos: usize) -> (f64, Vec<Vec<String>>) {
             mixed.push(paths.iter().map(|p| p.to_string()).collect());
         }
         for path in &paths {
-            let with_original = paths.iter().any(|p| *p == format!("{}/original.png", photo_of(path)));
+            let with_original = paths
+                .iter()
+                .any(|p| *p == format!("{}/original.png", photo_of(path)));
             found += usize::from(!path.ends_with("original.png") && with_original);
         }
     }
@@ -121,7 +142,13 @@ fn mild_copies_of_real_photos_are_found_and_distinct_photos_kept_apart() -> Resu
     let folder = work.path().join("photos");
     write_collection(&photos, &folder)?;
     let mut store = Store::create_or_open(&work.path().join("store"), &fingerprint_of(&encoder))?;
-    index_roots(&mut store, &encoder, &[folder], &IndexOptions::default(), &NoProgress)?;
+    index_roots(
+        &mut store,
+        &encoder,
+        &[folder],
+        &IndexOptions::default(),
+        &NoProgress,
+    )?;
     let catalog = Catalog::load(&store)?;
     assert_eq!(catalog.len(), photos.len() * (1 + MILD_EDITS.len()));
 
@@ -130,11 +157,20 @@ fn mild_copies_of_real_photos_are_found_and_distinct_photos_kept_apart() -> Resu
     for (name, verifier) in [("cosine threshold", None), ("verified", Some(&verifier))] {
         let report = find_duplicates(&store, &catalog, &options, verifier)?;
         let (recall, mixed) = score(&report, photos.len());
-        eprintln!("{name}: recall of mild copies {recall:.3}, {} mixed groups", mixed.len());
+        eprintln!(
+            "{name}: recall of mild copies {recall:.3}, {} mixed groups",
+            mixed.len()
+        );
         // Recall target of the task; Copydays reports mild edits as the easy
         // part of the benchmark.
-        assert!(recall >= 0.95, "{name}: recall {recall:.3} of mild copies is below 0.95");
-        assert!(mixed.is_empty(), "{name}: distinct photos grouped together: {mixed:?}");
+        assert!(
+            recall >= 0.95,
+            "{name}: recall {recall:.3} of mild copies is below 0.95"
+        );
+        assert!(
+            mixed.is_empty(),
+            "{name}: distinct photos grouped together: {mixed:?}"
+        );
         assert_eq!(report.verification.applied, verifier.is_some(), "{name}");
     }
     Ok(())

@@ -84,7 +84,10 @@ impl Encoder {
     }
 
     /// L2-normalised embeddings, one per image, pooled as the spec says.
-    pub fn embed<I: Borrow<PreparedImage>>(&self, images: &[I]) -> Result<Vec<Vec<f32>>, ModelError> {
+    pub fn embed<I: Borrow<PreparedImage>>(
+        &self,
+        images: &[I],
+    ) -> Result<Vec<Vec<f32>>, ModelError> {
         if images.is_empty() {
             return Ok(Vec::new());
         }
@@ -102,18 +105,29 @@ impl Encoder {
         }
         let out = self.forward(images)?;
         let embeddings = self.model.pool(&out, self.spec.pooling)?.to_vec2::<f32>()?;
-        let patches = out
-            .hidden
-            .narrow(1, self.model.first_patch_token(), out.hidden.dim(1)? - self.model.first_patch_token())?;
+        let patches = out.hidden.narrow(
+            1,
+            self.model.first_patch_token(),
+            out.hidden.dim(1)? - self.model.first_patch_token(),
+        )?;
         let (b, n, d) = patches.dims3()?;
-        let patches = crate::vit::l2_normalise(&patches.reshape((b * n, d))?)?.reshape((b, n, d))?;
+        let patches =
+            crate::vit::l2_normalise(&patches.reshape((b * n, d))?)?.reshape((b, n, d))?;
         let p = self.model.config().patch_size;
         let first = images[0].borrow();
         let (rows, cols) = (first.height as usize / p, first.width as usize / p);
         let mut result = Vec::with_capacity(b);
         for (i, embedding) in embeddings.into_iter().enumerate() {
             let normalised = patches.get(i)?.flatten_all()?.to_vec1::<f32>()?;
-            result.push((embedding, PatchTokens { rows, cols, dim: d, normalised }));
+            result.push((
+                embedding,
+                PatchTokens {
+                    rows,
+                    cols,
+                    dim: d,
+                    normalised,
+                },
+            ));
         }
         Ok(result)
     }

@@ -101,7 +101,9 @@ pub fn bicubic_resize_grid(
             let out = &mut horizontal[(r * out_cols + c_out) * dim..][..dim];
             for (&c, &w) in cols.iter().zip(weights) {
                 let src = &grid[(r * in_cols + c) * dim..][..dim];
-                out.iter_mut().zip(src).for_each(|(o, &s)| *o += w * s as f64);
+                out.iter_mut()
+                    .zip(src)
+                    .for_each(|(o, &s)| *o += w * s as f64);
             }
         }
     }

@@ -9,10 +9,10 @@ pub mod error;
 pub mod families;
 pub mod fetch;
 pub mod import;
+pub mod interpolate;
 pub mod layout;
 pub mod model_dir;
 pub mod onnx;
-pub mod interpolate;
 pub mod vit;
 
 pub use error::ModelError;

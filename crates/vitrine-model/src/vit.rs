@@ -109,10 +109,7 @@ impl SelfAttention {
         let v = qkv.i(2)?.contiguous()?;
         let scores = q.matmul(&k.t()?)?;
         let weights = candle_nn::ops::softmax_last_dim(&scores)?;
-        let context = weights
-            .matmul(&v)?
-            .transpose(1, 2)?
-            .reshape((b * t, d))?;
+        let context = weights.matmul(&v)?.transpose(1, 2)?.reshape((b * t, d))?;
         self.out.forward_2d(&context)?.reshape((b, t, d))
     }
 }
@@ -176,9 +173,15 @@ impl Block {
             Some(s) => y.broadcast_mul(s),
             None => Ok(y),
         };
-        let attended = scaled(self.attn.forward(&self.norm1.forward(x)?)?, &self.layer_scale1)?;
+        let attended = scaled(
+            self.attn.forward(&self.norm1.forward(x)?)?,
+            &self.layer_scale1,
+        )?;
         let x = (x + attended)?;
-        let transformed = scaled(self.mlp.forward(&self.norm2.forward(&x)?)?, &self.layer_scale2)?;
+        let transformed = scaled(
+            self.mlp.forward(&self.norm2.forward(&x)?)?,
+            &self.layer_scale2,
+        )?;
         x + transformed
     }
 }
@@ -211,7 +214,9 @@ impl VitModel {
             stride: p,
             ..Default::default()
         };
-        let patch_weight = vb.pp("patch_embed").get((d, cfg.num_channels, p, p), "weight")?;
+        let patch_weight = vb
+            .pp("patch_embed")
+            .get((d, cfg.num_channels, p, p), "weight")?;
         let patch_bias = if cfg.patch_bias {
             Some(vb.pp("patch_embed").get(d, "bias")?)
         } else {
@@ -303,7 +308,13 @@ impl VitModel {
         } else {
             bicubic_resize_grid(
                 self.cfg.pos_interpolation,
-                &self.grid_positions, g, g, d, rows, cols)
+                &self.grid_positions,
+                g,
+                g,
+                d,
+                rows,
+                cols,
+            )
         };
         let grid = Tensor::from_vec(resized, (rows * cols, d), &self.device)?;
         let positions = Tensor::cat(&[&self.cls_position, &grid], 0)?;
@@ -334,7 +345,10 @@ impl VitModel {
         let tokens = match &self.register_tokens {
             Some(registers) => {
                 let registers = registers.broadcast_as((b, self.cfg.num_registers, d))?;
-                Tensor::cat(&[&tokens.i((.., 0..1))?, &registers, &tokens.i((.., 1..))?], 1)?
+                Tensor::cat(
+                    &[&tokens.i((.., 0..1))?, &registers, &tokens.i((.., 1..))?],
+                    1,
+                )?
             }
             None => tokens,
         };
@@ -393,13 +407,19 @@ impl VitModel {
         match pooling {
             Pooling::Cls => cls(),
             Pooling::Mean => mean(),
-            Pooling::ClsMean => Tensor::cat(&[&cls()?, &mean()?], 1)? * std::f64::consts::FRAC_1_SQRT_2,
+            Pooling::ClsMean => {
+                Tensor::cat(&[&cls()?, &mean()?], 1)? * std::f64::consts::FRAC_1_SQRT_2
+            }
         }
     }
 }
 
 /// Row-wise L2 normalisation of `[B, E]`.
 pub fn l2_normalise(x: &Tensor) -> Result<Tensor> {
-    let norm = x.sqr()?.sum_keepdim(D::Minus1)?.sqrt()?.clamp(1e-12, f64::MAX)?;
+    let norm = x
+        .sqr()?
+        .sum_keepdim(D::Minus1)?
+        .sqrt()?
+        .clamp(1e-12, f64::MAX)?;
     x.broadcast_div(&norm)
 }

@@ -29,11 +29,13 @@ fn reference_setup() -> Result<Option<Reference>> {
     let onnx = std::env::var_os("VITRINE_TEST_ONNX").map(PathBuf::from);
     let model_dir = default_model_root().join(DEFAULT_WHEEL.id);
     match (python, onnx) {
-        (Some(python), Some(onnx)) if model_dir.join("model.json").exists() => Ok(Some(Reference {
-            python,
-            onnx,
-            model_dir,
-        })),
+        (Some(python), Some(onnx)) if model_dir.join("model.json").exists() => {
+            Ok(Some(Reference {
+                python,
+                onnx,
+                model_dir,
+            }))
+        }
         _ if std::env::var_os("CI").is_some() => {
             bail!("CI must provide VITRINE_PYTHON, VITRINE_TEST_ONNX and the default model")
         }
@@ -46,7 +48,10 @@ fn reference_setup() -> Result<Option<Reference>> {
 
 fn skimage_photos(python: &str) -> Result<Vec<PathBuf>> {
     let out = Command::new(python)
-        .args(["-c", "import skimage, os; print(os.path.dirname(skimage.__file__))"])
+        .args([
+            "-c",
+            "import skimage, os; print(os.path.dirname(skimage.__file__))",
+        ])
         .output()
         .context("running python to locate scikit-image")?;
     let dir = PathBuf::from(String::from_utf8(out.stdout)?.trim()).join("data");
@@ -71,7 +76,10 @@ fn hidden_states_match_onnxruntime() -> Result<()> {
         prepared.push(preprocess(&decoded.rgb, &spec)?);
     }
     let side = spec.crop as usize;
-    let data: Vec<f32> = prepared.iter().flat_map(|p| p.chw.iter().copied()).collect();
+    let data: Vec<f32> = prepared
+        .iter()
+        .flat_map(|p| p.chw.iter().copied())
+        .collect();
     let pixels = Tensor::from_vec(data, (prepared.len(), 3, side, side), &Device::Cpu)?;
 
     let work = tempfile::tempdir()?;
@@ -95,7 +103,10 @@ fn hidden_states_match_onnxruntime() -> Result<()> {
         .flatten_all()?
         .max(0)?
         .to_scalar::<f32>()?;
-    println!("max |ours - onnxruntime| over {:?}: {max_abs_error:e}", ours.dims());
+    println!(
+        "max |ours - onnxruntime| over {:?}: {max_abs_error:e}",
+        ours.dims()
+    );
     // Tolerance set by the issue: 1e-4 max absolute error on hidden states.
     assert!(max_abs_error <= 1e-4, "max abs error {max_abs_error}");
 

@@ -230,7 +230,10 @@ impl Jobs {
             .filter(|(_, j)| j.status.lock().finished_unix_s.is_some())
             .map(|(&id, _)| id)
             .collect();
-        for id in finished.iter().take(finished.len().saturating_sub(FINISHED_JOBS_KEPT)) {
+        for id in finished
+            .iter()
+            .take(finished.len().saturating_sub(FINISHED_JOBS_KEPT))
+        {
             table.remove(id);
         }
     }
@@ -242,7 +245,9 @@ impl Jobs {
                 self.slot_freed.wait(&mut free);
             }
             if self.closing.load(Ordering::SeqCst) {
-                job.finish(Err("cancelled: the server shut down before the job started".into()));
+                job.finish(Err(
+                    "cancelled: the server shut down before the job started".into(),
+                ));
                 return;
             }
             *free -= 1;

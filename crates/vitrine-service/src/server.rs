@@ -19,10 +19,11 @@ fn listen_address(bind: &str, token: Option<&str>) -> Result<IpAddr, ServiceErro
     let ip = if bind == "localhost" {
         IpAddr::V4(Ipv4Addr::LOCALHOST)
     } else {
-        bind.parse::<IpAddr>().map_err(|e| ServiceError::BadSetting {
-            name: "bind",
-            reason: format!("`{bind}` is not an IP address: {e}"),
-        })?
+        bind.parse::<IpAddr>()
+            .map_err(|e| ServiceError::BadSetting {
+                name: "bind",
+                reason: format!("`{bind}` is not an IP address: {e}"),
+            })?
     };
     if !ip.is_loopback() && token.is_none() {
         return Err(ServiceError::PublicBindWithoutToken { bind: bind.into() });
@@ -82,7 +83,11 @@ async fn time_limit(
     }
 }
 
-fn extractor_error(code: &'static str, status: StatusCode, err: impl std::fmt::Display) -> actix_web::Error {
+fn extractor_error(
+    code: &'static str,
+    status: StatusCode,
+    err: impl std::fmt::Display,
+) -> actix_web::Error {
     ApiError::new(status, code, err.to_string()).into()
 }
 
@@ -96,7 +101,8 @@ fn configure(cfg: &mut web::ServiceConfig, state: &web::Data<AppState>) {
                 .error_handler(move |err, _| {
                     use actix_web::error::JsonPayloadError;
                     match err {
-                        JsonPayloadError::Overflow { .. } | JsonPayloadError::OverflowKnownLength { .. } => {
+                        JsonPayloadError::Overflow { .. }
+                        | JsonPayloadError::OverflowKnownLength { .. } => {
                             ApiError::payload_too_large(limit).into()
                         }
                         JsonPayloadError::ContentType => extractor_error(
@@ -109,12 +115,16 @@ fn configure(cfg: &mut web::ServiceConfig, state: &web::Data<AppState>) {
                 }),
         )
         .app_data(web::PayloadConfig::default().limit(limit))
-        .app_data(web::QueryConfig::default().error_handler(|err, _| {
-            extractor_error("invalid_query", StatusCode::BAD_REQUEST, err)
-        }))
-        .app_data(web::PathConfig::default().error_handler(|err, _| {
-            extractor_error("invalid_path", StatusCode::BAD_REQUEST, err)
-        }))
+        .app_data(
+            web::QueryConfig::default().error_handler(|err, _| {
+                extractor_error("invalid_query", StatusCode::BAD_REQUEST, err)
+            }),
+        )
+        .app_data(
+            web::PathConfig::default().error_handler(|err, _| {
+                extractor_error("invalid_path", StatusCode::BAD_REQUEST, err)
+            }),
+        )
         .configure(api::configure)
         .service(system::healthz)
         .service(system::readyz)
@@ -212,7 +222,9 @@ async fn stop_signal() {
         }
     });
     let terminate = Box::pin(async {
-        match actix_web::rt::signal::unix::signal(actix_web::rt::signal::unix::SignalKind::terminate()) {
+        match actix_web::rt::signal::unix::signal(
+            actix_web::rt::signal::unix::SignalKind::terminate(),
+        ) {
             Ok(mut signal) => {
                 signal.recv().await;
             }

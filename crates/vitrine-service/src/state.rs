@@ -91,12 +91,13 @@ impl AppState {
             if collections.contains_key(&name) {
                 return Err(ServiceError::DuplicateCollection(name));
             }
-            let collection = Collection::open(name.clone(), dir.clone())
-                .map_err(|source| ServiceError::OpenCollection {
+            let collection = Collection::open(name.clone(), dir.clone()).map_err(|source| {
+                ServiceError::OpenCollection {
                     name: name.clone(),
                     dir,
                     source,
-                })?;
+                }
+            })?;
             collections.insert(name, Arc::new(collection));
         }
         let upload_limits = DecodeOptions {

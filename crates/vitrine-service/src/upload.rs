@@ -10,6 +10,19 @@ use futures_util::StreamExt;
 
 use crate::error::ApiError;
 
+/// An image file's bytes, as documented in the OpenAPI document.
+#[derive(utoipa::ToSchema)]
+#[schema(value_type = String, format = Binary)]
+pub struct ImageBytes(pub Vec<u8>);
+
+/// A `multipart/form-data` form with image files, as documented.
+#[derive(utoipa::ToSchema)]
+pub struct ImageForm {
+    /// One or more file fields (any field name; `file` is usual).
+    #[schema(value_type = String, format = Binary)]
+    pub file: Vec<u8>,
+}
+
 /// One uploaded file.
 pub struct UploadedFile {
     /// The client's file name, if it gave one (never trusted as a path).
@@ -18,7 +31,10 @@ pub struct UploadedFile {
 }
 
 fn malformed(err: impl std::fmt::Display) -> ApiError {
-    ApiError::bad_request("malformed_multipart", format!("cannot read the form: {err}"))
+    ApiError::bad_request(
+        "malformed_multipart",
+        format!("cannot read the form: {err}"),
+    )
 }
 
 /// Appends `chunk` to `buffer`, failing with 413 once `used + buffer` would

@@ -241,6 +241,10 @@
     const root = document.getElementById('view');
     const pathChanged = state.lastPath !== path;
     state.lastPath = path;
+    // A control that changed the address is rebuilt with the view: focus returns to its twin.
+    const focusedId = !pathChanged && document.activeElement && root.contains(document.activeElement)
+      ? document.activeElement.id : '';
+    if (previewObserver) previewObserver.disconnect();
     root.replaceChildren();
     if (!match) {
       root.append(emptyState('This page does not exist.', h('span', {}, 'Go to ', h('a', { href: '#/search' }, 'Search'), '.')));
@@ -258,8 +262,11 @@
       arg: match.m[1] !== undefined ? decodeURIComponent(match.m[1]) : undefined,
       isCurrent: () => state.controller === controller,
     };
+    const rendering = match.r.render(ctx);
+    const twin = focusedId && document.getElementById(focusedId);
+    if (twin) twin.focus();
     try {
-      await match.r.render(ctx);
+      await rendering;
     } catch (err) {
       if (err.name === 'AbortError' || !ctx.isCurrent()) return;
       root.append(errorState(err, () => route()));
@@ -825,6 +832,11 @@
       const box = h('input', { type: 'checkbox', id, value: s, checked: !chosen.length || chosen.includes(s) });
       box.addEventListener('change', () => {
         const picked = Array.from(root.querySelectorAll('.checks input:checked')).map((b) => b.value);
+        if (!picked.length) {
+          box.checked = true;
+          announce('At least one split is evaluated.');
+          return;
+        }
         navigate(hrefWith({ split: picked, page: 1 }));
       });
       return h('label', { for: id }, box, s);
@@ -868,7 +880,7 @@
   function leakSummary(summary, reference) {
     if (!summary.length) return null;
     return h('table', { class: 'summary', dataset: { testid: 'leak-summary' } },
-      h('caption', {}, `Leakage into ${reference}, per evaluated split`),
+      h('caption', {}, `Images with a copy in ${reference}, per evaluated split`),
       h('thead', {}, h('tr', {},
         h('th', { scope: 'col' }, 'Split'), h('th', { scope: 'col' }, 'Images'), h('th', { scope: 'col' }, 'Leaked'),
         h('th', { scope: 'col' }, 'Share'), h('th', { scope: 'col' }, h('span', { class: 'visually-hidden' }, 'Share as a bar')))),
@@ -891,7 +903,7 @@
     const headingId = `leak-${number}`;
     return h('section', { class: 'review-item', 'aria-labelledby': headingId, dataset: { path: leaked.path || '', counterpart: counterpart.path || '' } },
       h('header', {}, h('h2', { id: headingId }, `Pair ${number}`),
-        h('span', { class: 'count' }, `${leaked.split || '?'} → ${counterpart.split || reference}`)),
+        h('span', { class: 'count' }, `${leaked.split || '?'} image with a copy in ${counterpart.split || reference}`)),
       h('div', { class: 'pair' },
         h('div', {}, h('p', { class: 'side-label' }, `Evaluated (${leaked.split || '?'})`), imageCard(leaked)),
         h('div', { class: 'link' },

@@ -233,7 +233,12 @@ fn bad_requests_get_json_errors_and_change_nothing() -> Result<()> {
             let api = |path: &str| server.url(&format!("/api/v1/collections/shop{path}"));
             let snapshot = || async {
                 let status = send(client.get(api("/status")), Body::Empty).await?.json();
-                let neighbours = send(client.get(api(&format!("/images/{id}/neighbours?k=5"))), Body::Empty).await?.json();
+                let neighbours = send(
+                    client.get(api(&format!("/images/{id}/neighbours?k=5"))),
+                    Body::Empty,
+                )
+                .await?
+                .json();
                 anyhow::Ok((status, neighbours))
             };
             let before = snapshot().await?;
@@ -248,54 +253,352 @@ fn bad_requests_get_json_errors_and_change_nothing() -> Result<()> {
             let bearer = ("Authorization", format!("Bearer {TOKEN}"));
 
             let cases: Vec<(&str, awc::ClientRequest, Body, u16, &str)> = vec![
-                ("unknown collection", client.get(server.url("/api/v1/collections/nope/status")), Body::Empty, 404, "unknown_collection"),
-                ("collection traversal", client.get(server.url("/api/v1/collections/..%2F..%2Fetc/status")), Body::Empty, 404, "unknown_collection"),
-                ("unknown id", client.get(api("/images/987654321")), Body::Empty, 404, "unknown_image"),
-                ("id not a number", client.get(api("/images/abc")), Body::Empty, 400, "invalid_path"),
-                ("negative id", client.get(api("/images/-1")), Body::Empty, 400, "invalid_path"),
-                ("id traversal", client.get(api("/images/..%2F..%2Fetc%2Fpasswd/thumbnail")), Body::Empty, 400, "invalid_path"),
-                ("static traversal", client.get(server.url("/static/..%2F..%2FCargo.toml")), Body::Empty, 404, "not_found"),
-                ("unknown route", client.get(server.url("/api/v1/nothing")), Body::Empty, 404, "not_found"),
-                ("wrong method", client.delete(api("/status")), Body::Empty, 404, "not_found"),
-                ("negative k", client.get(api(&format!("/images/{id}/neighbours?k=-1"))), Body::Empty, 400, "invalid_query"),
-                ("zero k", client.get(api(&format!("/images/{id}/neighbours?k=0"))), Body::Empty, 400, "k_out_of_range"),
-                ("huge k", client.get(api(&format!("/images/{id}/neighbours?k=100000"))), Body::Empty, 400, "k_out_of_range"),
-                ("overflowing k", client.get(api(&format!("/images/{id}/neighbours?k=99999999999999999999999"))), Body::Empty, 400, "invalid_query"),
-                ("k not a number", client.get(api(&format!("/images/{id}/neighbours?k=ten"))), Body::Empty, 400, "invalid_query"),
-                ("page zero", client.get(api("/images?page=0")), Body::Empty, 400, "page_out_of_range"),
-                ("page too big", client.get(api("/images?per_page=100000")), Body::Empty, 400, "page_size_out_of_range"),
-                ("threshold out of range", client.get(api("/duplicates?threshold=2")), Body::Empty, 400, "threshold_out_of_range"),
-                ("threshold NaN", client.get(api("/leaks?threshold=NaN")), Body::Empty, 400, "threshold_out_of_range"),
-                ("zero clusters", client.get(api("/clusters?k=0")), Body::Empty, 400, "k_out_of_range"),
-                ("unknown cluster", client.get(api("/clusters/999?k=2")), Body::Empty, 404, "unknown_cluster"),
-                ("confidence out of range", client.get(api("/labels/suggestions?min_confidence=2")), Body::Empty, 400, "share_out_of_range"),
-                ("thumbnail size zero", client.get(api(&format!("/images/{id}/thumbnail?size=0"))), Body::Empty, 400, "invalid_size"),
-                ("unknown job", client.get(api("/jobs/424242")), Body::Empty, 404, "unknown_job"),
-                ("malformed JSON", client.post(api("/search/vector")), Body::Raw("application/json".into(), b"{\"vector\": [".to_vec()), 400, "invalid_json"),
-                ("wrong JSON type", client.post(api("/search/vector")), Body::Json(json!({"vector": "up"})), 400, "invalid_json"),
-                ("missing JSON field", client.post(api("/search/vector")), Body::Json(json!({"k": 3})), 400, "invalid_json"),
-                ("unknown JSON field", client.post(api("/search/vector")), Body::Json(json!({"vector": [1.0], "colour": "red"})), 400, "invalid_json"),
-                ("negative k in JSON", client.post(api("/search/vector")), Body::Json(json!({"vector": zero_vector, "k": -3})), 400, "invalid_json"),
-                ("wrong dimension", client.post(api("/search/vector")), Body::Json(json!({"vector": [1.0, 2.0, 3.0]})), 400, "dimension_mismatch"),
-                ("zero vector", client.post(api("/search/vector")), Body::Json(json!({"vector": zero_vector})), 400, "invalid_vector"),
-                ("JSON as text", client.post(api("/search/vector")), Body::Raw("text/plain".into(), b"{}".to_vec()), 415, "unsupported_media_type"),
-                ("oversized JSON", client.post(api("/search/vector")), Body::Raw("application/json".into(), oversized.clone()), 413, "payload_too_large"),
-                ("search with text", client.post(api("/search")), Body::Raw("text/plain".into(), b"hello".to_vec()), 415, "unsupported_media_type"),
-                ("search with non-image", client.post(api("/search")), Body::Raw("image/png".into(), b"hello, not a png".to_vec()), 422, "not_an_image"),
-                ("search with empty body", client.post(api("/search")), Body::Raw("image/png".into(), Vec::new()), 400, "no_image"),
-                ("search oversized", client.post(api("/search")), Body::Raw("image/jpeg".into(), oversized.clone()), 413, "payload_too_large"),
-                ("decompression bomb", client.post(api("/search")), Body::Raw("image/png".into(), huge_png.clone()), 413, "too_many_pixels"),
-                ("garbled multipart", client.post(api("/search")), Body::Raw(garbled_type, b"garbage without boundaries".to_vec()), 400, "malformed_multipart"),
-                ("search with k too big", client.post(api("/search?k=1000")), Body::Raw("image/png".into(), good_png.clone()), 400, "k_out_of_range"),
-                ("upload without token", client.post(api("/images")), Body::Raw("image/png".into(), good_png.clone()), 401, "missing_token"),
-                ("upload with wrong token", client.post(api("/images")).insert_header(wrong_bearer.clone()), Body::Raw("image/png".into(), good_png.clone()), 403, "invalid_token"),
-                ("upload of text", client.post(api("/images")).insert_header(bearer.clone()), Body::Raw(form_type, text_form), 422, "not_an_image"),
-                ("upload bomb", client.post(api("/images")).insert_header(bearer.clone()), Body::Raw("image/png".into(), huge_png), 413, "too_many_pixels"),
-                ("upload into a bad split", client.post(api("/images?split=..%2F..%2Fetc")).insert_header(bearer.clone()), Body::Raw("image/png".into(), good_png.clone()), 400, "invalid_split"),
-                ("upload with a bad label", client.post(api("/images?split=train&label=..%2Fx")).insert_header(bearer.clone()), Body::Raw("image/png".into(), good_png.clone()), 400, "invalid_label"),
-                ("upload label without split", client.post(api("/images?label=lamp")).insert_header(bearer.clone()), Body::Raw("image/png".into(), good_png), 400, "label_without_split"),
-                ("rescan without token", client.post(api("/jobs/rescan")), Body::Empty, 401, "missing_token"),
-                ("rescan with wrong token", client.post(api("/jobs/rescan")).insert_header(wrong_bearer), Body::Empty, 403, "invalid_token"),
+                (
+                    "unknown collection",
+                    client.get(server.url("/api/v1/collections/nope/status")),
+                    Body::Empty,
+                    404,
+                    "unknown_collection",
+                ),
+                (
+                    "collection traversal",
+                    client.get(server.url("/api/v1/collections/..%2F..%2Fetc/status")),
+                    Body::Empty,
+                    404,
+                    "unknown_collection",
+                ),
+                (
+                    "unknown id",
+                    client.get(api("/images/987654321")),
+                    Body::Empty,
+                    404,
+                    "unknown_image",
+                ),
+                (
+                    "id not a number",
+                    client.get(api("/images/abc")),
+                    Body::Empty,
+                    400,
+                    "invalid_path",
+                ),
+                (
+                    "negative id",
+                    client.get(api("/images/-1")),
+                    Body::Empty,
+                    400,
+                    "invalid_path",
+                ),
+                (
+                    "id traversal",
+                    client.get(api("/images/..%2F..%2Fetc%2Fpasswd/thumbnail")),
+                    Body::Empty,
+                    400,
+                    "invalid_path",
+                ),
+                (
+                    "static traversal",
+                    client.get(server.url("/static/..%2F..%2FCargo.toml")),
+                    Body::Empty,
+                    404,
+                    "not_found",
+                ),
+                (
+                    "unknown route",
+                    client.get(server.url("/api/v1/nothing")),
+                    Body::Empty,
+                    404,
+                    "not_found",
+                ),
+                (
+                    "wrong method",
+                    client.delete(api("/status")),
+                    Body::Empty,
+                    404,
+                    "not_found",
+                ),
+                (
+                    "negative k",
+                    client.get(api(&format!("/images/{id}/neighbours?k=-1"))),
+                    Body::Empty,
+                    400,
+                    "invalid_query",
+                ),
+                (
+                    "zero k",
+                    client.get(api(&format!("/images/{id}/neighbours?k=0"))),
+                    Body::Empty,
+                    400,
+                    "k_out_of_range",
+                ),
+                (
+                    "huge k",
+                    client.get(api(&format!("/images/{id}/neighbours?k=100000"))),
+                    Body::Empty,
+                    400,
+                    "k_out_of_range",
+                ),
+                (
+                    "overflowing k",
+                    client.get(api(&format!(
+                        "/images/{id}/neighbours?k=99999999999999999999999"
+                    ))),
+                    Body::Empty,
+                    400,
+                    "invalid_query",
+                ),
+                (
+                    "k not a number",
+                    client.get(api(&format!("/images/{id}/neighbours?k=ten"))),
+                    Body::Empty,
+                    400,
+                    "invalid_query",
+                ),
+                (
+                    "page zero",
+                    client.get(api("/images?page=0")),
+                    Body::Empty,
+                    400,
+                    "page_out_of_range",
+                ),
+                (
+                    "page too big",
+                    client.get(api("/images?per_page=100000")),
+                    Body::Empty,
+                    400,
+                    "page_size_out_of_range",
+                ),
+                (
+                    "threshold out of range",
+                    client.get(api("/duplicates?threshold=2")),
+                    Body::Empty,
+                    400,
+                    "threshold_out_of_range",
+                ),
+                (
+                    "threshold NaN",
+                    client.get(api("/leaks?threshold=NaN")),
+                    Body::Empty,
+                    400,
+                    "threshold_out_of_range",
+                ),
+                (
+                    "zero clusters",
+                    client.get(api("/clusters?k=0")),
+                    Body::Empty,
+                    400,
+                    "k_out_of_range",
+                ),
+                (
+                    "unknown cluster",
+                    client.get(api("/clusters/999?k=2")),
+                    Body::Empty,
+                    404,
+                    "unknown_cluster",
+                ),
+                (
+                    "confidence out of range",
+                    client.get(api("/labels/suggestions?min_confidence=2")),
+                    Body::Empty,
+                    400,
+                    "share_out_of_range",
+                ),
+                (
+                    "thumbnail size zero",
+                    client.get(api(&format!("/images/{id}/thumbnail?size=0"))),
+                    Body::Empty,
+                    400,
+                    "invalid_size",
+                ),
+                (
+                    "unknown job",
+                    client.get(api("/jobs/424242")),
+                    Body::Empty,
+                    404,
+                    "unknown_job",
+                ),
+                (
+                    "malformed JSON",
+                    client.post(api("/search/vector")),
+                    Body::Raw("application/json".into(), b"{\"vector\": [".to_vec()),
+                    400,
+                    "invalid_json",
+                ),
+                (
+                    "wrong JSON type",
+                    client.post(api("/search/vector")),
+                    Body::Json(json!({"vector": "up"})),
+                    400,
+                    "invalid_json",
+                ),
+                (
+                    "missing JSON field",
+                    client.post(api("/search/vector")),
+                    Body::Json(json!({"k": 3})),
+                    400,
+                    "invalid_json",
+                ),
+                (
+                    "unknown JSON field",
+                    client.post(api("/search/vector")),
+                    Body::Json(json!({"vector": [1.0], "colour": "red"})),
+                    400,
+                    "invalid_json",
+                ),
+                (
+                    "negative k in JSON",
+                    client.post(api("/search/vector")),
+                    Body::Json(json!({"vector": zero_vector, "k": -3})),
+                    400,
+                    "invalid_json",
+                ),
+                (
+                    "wrong dimension",
+                    client.post(api("/search/vector")),
+                    Body::Json(json!({"vector": [1.0, 2.0, 3.0]})),
+                    400,
+                    "dimension_mismatch",
+                ),
+                (
+                    "zero vector",
+                    client.post(api("/search/vector")),
+                    Body::Json(json!({"vector": zero_vector})),
+                    400,
+                    "invalid_vector",
+                ),
+                (
+                    "JSON as text",
+                    client.post(api("/search/vector")),
+                    Body::Raw("text/plain".into(), b"{}".to_vec()),
+                    415,
+                    "unsupported_media_type",
+                ),
+                (
+                    "oversized JSON",
+                    client.post(api("/search/vector")),
+                    Body::Raw("application/json".into(), oversized.clone()),
+                    413,
+                    "payload_too_large",
+                ),
+                (
+                    "search with text",
+                    client.post(api("/search")),
+                    Body::Raw("text/plain".into(), b"hello".to_vec()),
+                    415,
+                    "unsupported_media_type",
+                ),
+                (
+                    "search with non-image",
+                    client.post(api("/search")),
+                    Body::Raw("image/png".into(), b"hello, not a png".to_vec()),
+                    422,
+                    "not_an_image",
+                ),
+                (
+                    "search with empty body",
+                    client.post(api("/search")),
+                    Body::Raw("image/png".into(), Vec::new()),
+                    400,
+                    "no_image",
+                ),
+                (
+                    "search oversized",
+                    client.post(api("/search")),
+                    Body::Raw("image/jpeg".into(), oversized.clone()),
+                    413,
+                    "payload_too_large",
+                ),
+                (
+                    "decompression bomb",
+                    client.post(api("/search")),
+                    Body::Raw("image/png".into(), huge_png.clone()),
+                    413,
+                    "too_many_pixels",
+                ),
+                (
+                    "garbled multipart",
+                    client.post(api("/search")),
+                    Body::Raw(garbled_type, b"garbage without boundaries".to_vec()),
+                    400,
+                    "malformed_multipart",
+                ),
+                (
+                    "search with k too big",
+                    client.post(api("/search?k=1000")),
+                    Body::Raw("image/png".into(), good_png.clone()),
+                    400,
+                    "k_out_of_range",
+                ),
+                (
+                    "upload without token",
+                    client.post(api("/images")),
+                    Body::Raw("image/png".into(), good_png.clone()),
+                    401,
+                    "missing_token",
+                ),
+                (
+                    "upload with wrong token",
+                    client
+                        .post(api("/images"))
+                        .insert_header(wrong_bearer.clone()),
+                    Body::Raw("image/png".into(), good_png.clone()),
+                    403,
+                    "invalid_token",
+                ),
+                (
+                    "upload of text",
+                    client.post(api("/images")).insert_header(bearer.clone()),
+                    Body::Raw(form_type, text_form),
+                    422,
+                    "not_an_image",
+                ),
+                (
+                    "upload bomb",
+                    client.post(api("/images")).insert_header(bearer.clone()),
+                    Body::Raw("image/png".into(), huge_png),
+                    413,
+                    "too_many_pixels",
+                ),
+                (
+                    "upload into a bad split",
+                    client
+                        .post(api("/images?split=..%2F..%2Fetc"))
+                        .insert_header(bearer.clone()),
+                    Body::Raw("image/png".into(), good_png.clone()),
+                    400,
+                    "invalid_split",
+                ),
+                (
+                    "upload with a bad label",
+                    client
+                        .post(api("/images?split=train&label=..%2Fx"))
+                        .insert_header(bearer.clone()),
+                    Body::Raw("image/png".into(), good_png.clone()),
+                    400,
+                    "invalid_label",
+                ),
+                (
+                    "upload label without split",
+                    client
+                        .post(api("/images?label=lamp"))
+                        .insert_header(bearer.clone()),
+                    Body::Raw("image/png".into(), good_png),
+                    400,
+                    "label_without_split",
+                ),
+                (
+                    "rescan without token",
+                    client.post(api("/jobs/rescan")),
+                    Body::Empty,
+                    401,
+                    "missing_token",
+                ),
+                (
+                    "rescan with wrong token",
+                    client.post(api("/jobs/rescan")).insert_header(wrong_bearer),
+                    Body::Empty,
+                    403,
+                    "invalid_token",
+                ),
             ];
             for (what, request, body, status, code) in cases {
                 let answer = send(request, body).await?;
@@ -305,15 +608,31 @@ fn bad_requests_get_json_errors_and_change_nothing() -> Result<()> {
                     "{what}: {}",
                     String::from_utf8_lossy(&answer.bytes)
                 );
-                assert!(answer.content_type.starts_with("application/json"), "{what}");
+                assert!(
+                    answer.content_type.starts_with("application/json"),
+                    "{what}"
+                );
             }
 
-            assert_eq!(send(client.get(server.url("/healthz")), Body::Empty).await?.status, 200);
-            assert_eq!(snapshot().await?, before, "status and neighbours are unchanged");
+            assert_eq!(
+                send(client.get(server.url("/healthz")), Body::Empty)
+                    .await?
+                    .status,
+                200
+            );
+            assert_eq!(
+                snapshot().await?,
+                before,
+                "status and neighbours are unchanged"
+            );
             anyhow::Ok(())
         })?;
     }
-    assert_eq!(list_files(&fixture.root), files_before, "no file was written");
+    assert_eq!(
+        list_files(&fixture.root),
+        files_before,
+        "no file was written"
+    );
 
     // The same store served without any token: writes are disabled.
     let settings = vitrine_service::ServeSettings {
@@ -330,7 +649,10 @@ fn bad_requests_get_json_errors_and_change_nothing() -> Result<()> {
             Body::Empty,
         )
         .await?;
-        assert_eq!((answer.status, answer.error_code().as_str()), (403, "writes_disabled"));
+        assert_eq!(
+            (answer.status, answer.error_code().as_str()),
+            (403, "writes_disabled")
+        );
         anyhow::Ok(())
     })
 }
@@ -352,7 +674,8 @@ fn public_address_needs_a_token() -> Result<()> {
         duplicates: Default::default(),
         reference_split: "train".into(),
     };
-    let refused = actix_web::rt::System::new().block_on(async { vitrine_service::Service::bind(config).err() });
+    let refused = actix_web::rt::System::new()
+        .block_on(async { vitrine_service::Service::bind(config).err() });
     assert!(matches!(
         refused,
         Some(vitrine_service::ServiceError::PublicBindWithoutToken { .. })

@@ -5,7 +5,8 @@
 use std::path::PathBuf;
 use std::process::Command;
 
-const REGENERATE: &str = "regenerate it with `VITRINE_UPDATE_OPENAPI=1 cargo test -p vitrine-service --test openapi` \
+const REGENERATE: &str =
+    "regenerate it with `VITRINE_UPDATE_OPENAPI=1 cargo test -p vitrine-service --test openapi` \
      (or `vitrine serve --print-openapi > crates/vitrine-service/openapi.json`)";
 
 fn checked_in_path() -> PathBuf {

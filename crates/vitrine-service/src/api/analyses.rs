@@ -129,7 +129,10 @@ pub struct DuplicatesPage {
     pub per_page: usize,
 }
 
-fn duplicate_options(state: &AppState, threshold: Option<f32>) -> Result<DuplicateOptions, ApiError> {
+fn duplicate_options(
+    state: &AppState,
+    threshold: Option<f32>,
+) -> Result<DuplicateOptions, ApiError> {
     let threshold = threshold.unwrap_or(state.duplicates.near_duplicate_threshold);
     if !(-1.0..=1.0).contains(&threshold) {
         return Err(ApiError::bad_request(
@@ -145,6 +148,7 @@ fn duplicate_options(state: &AppState, threshold: Option<f32>) -> Result<Duplica
 
 /// Groups of identical and near-duplicate images (a report: nothing is deleted).
 #[utoipa::path(
+    operation_id = "duplicate_groups",
     tag = "analyses",
     params(("collection" = String, Path, description = "Collection name"), DuplicateParams),
     responses(
@@ -262,6 +266,7 @@ pub struct LeaksPage {
 
 /// Images of evaluated splits that have a copy in the reference split.
 #[utoipa::path(
+    operation_id = "split_leaks",
     tag = "analyses",
     params(("collection" = String, Path, description = "Collection name"), LeakParams),
     responses(

@@ -120,6 +120,7 @@ pub struct ClustersBody {
 
 /// Cluster summaries: size, medoid, top labels, split mix, cohesion.
 #[utoipa::path(
+    operation_id = "cluster_summaries",
     tag = "clusters",
     params(("collection" = String, Path, description = "Collection name"), ClusterParams),
     responses(
@@ -136,7 +137,8 @@ pub async fn summaries(
 ) -> Result<HttpResponse, ApiError> {
     let collection = state.collection(&path)?;
     let options = query.options(&state.settings)?;
-    let report = blocking(move || clustering(&collection, &collection.snapshot(), &options)).await?;
+    let report =
+        blocking(move || clustering(&collection, &collection.snapshot(), &options)).await?;
     Ok(HttpResponse::Ok().json(ClustersBody {
         n_clusters: report.n_clusters,
         seed: report.seed,
@@ -166,6 +168,7 @@ pub struct ClusterMembersPage {
 
 /// The members of one cluster, most central first.
 #[utoipa::path(
+    operation_id = "cluster_members",
     tag = "clusters",
     params(
         ("collection" = String, Path, description = "Collection name"),

@@ -86,6 +86,7 @@ fn status_of(state: &AppState, collection: &Collection, snapshot: &Snapshot) -> 
 
 /// Every served collection with its status.
 #[utoipa::path(
+    operation_id = "list_collections",
     tag = "collections",
     responses((status = 200, body = CollectionList))
 )]
@@ -101,6 +102,7 @@ pub async fn list(state: State) -> HttpResponse {
 
 /// One collection's status.
 #[utoipa::path(
+    operation_id = "collection_status",
     tag = "collections",
     params(("collection" = String, Path, description = "Collection name")),
     responses(
@@ -142,6 +144,7 @@ pub struct ErrorsPage {
 
 /// Files of the collection that could not be indexed, and why.
 #[utoipa::path(
+    operation_id = "collection_errors",
     tag = "collections",
     params(("collection" = String, Path, description = "Collection name"), PageParams),
     responses(

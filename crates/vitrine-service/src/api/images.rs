@@ -18,7 +18,7 @@ use crate::collection::{Query, Snapshot};
 use crate::error::{ApiError, ErrorBody};
 use crate::jobs::{JobKind, JobStatus};
 use crate::thumbnails::make_thumbnail;
-use crate::upload::{read_uploads, UploadedFile};
+use crate::upload::{read_uploads, ImageBytes, ImageForm, UploadedFile};
 
 /// What the index knows about one image.
 #[derive(Debug, Serialize, ToSchema)]
@@ -82,6 +82,7 @@ pub struct ImagesPage {
 
 /// Indexed images, by increasing id, optionally filtered.
 #[utoipa::path(
+    operation_id = "list_images",
     tag = "images",
     params(("collection" = String, Path, description = "Collection name"), ListParams),
     responses(
@@ -104,8 +105,14 @@ pub async fn list(
     let mut rows: Vec<usize> = (0..records.len())
         .filter(|&row| {
             let r = &records[row];
-            query.split.as_ref().is_none_or(|s| r.split.as_ref() == Some(s))
-                && query.label.as_ref().is_none_or(|l| r.label.as_ref() == Some(l))
+            query
+                .split
+                .as_ref()
+                .is_none_or(|s| r.split.as_ref() == Some(s))
+                && query
+                    .label
+                    .as_ref()
+                    .is_none_or(|l| r.label.as_ref() == Some(l))
                 && query
                     .prefix
                     .as_ref()
@@ -136,6 +143,7 @@ fn row_of(snapshot: &Snapshot, id: ImageId) -> Result<usize, ApiError> {
 
 /// One image's metadata.
 #[utoipa::path(
+    operation_id = "image_metadata",
     tag = "images",
     params(
         ("collection" = String, Path, description = "Collection name"),
@@ -167,6 +175,7 @@ pub struct ThumbnailParams {
 
 /// A JPEG thumbnail of an indexed image, made from the indexed file.
 #[utoipa::path(
+    operation_id = "image_thumbnail",
     tag = "images",
     params(
         ("collection" = String, Path, description = "Collection name"),
@@ -174,7 +183,7 @@ pub struct ThumbnailParams {
         ThumbnailParams,
     ),
     responses(
-        (status = 200, description = "JPEG thumbnail", content_type = "image/jpeg", body = Vec<u8>),
+        (status = 200, description = "JPEG thumbnail", content_type = "image/jpeg", body = ImageBytes),
         (status = 400, body = ErrorBody),
         (status = 404, body = ErrorBody),
         (status = 410, description = "The indexed file is gone or unreadable", body = ErrorBody),
@@ -189,7 +198,10 @@ pub async fn thumbnail(
     let (name, id) = path.into_inner();
     let size = query.size.unwrap_or(160);
     if size == 0 {
-        return Err(ApiError::bad_request("invalid_size", "size must be at least 1"));
+        return Err(ApiError::bad_request(
+            "invalid_size",
+            "size must be at least 1",
+        ));
     }
     let size = size.min(state.settings.thumbnail_max_size);
     let snapshot = state.collection(&name)?.snapshot();
@@ -229,6 +241,7 @@ pub struct NeighbourParams {
 
 /// Nearest neighbours of an indexed image (itself excluded), best first.
 #[utoipa::path(
+    operation_id = "image_neighbours",
     tag = "images",
     params(
         ("collection" = String, Path, description = "Collection name"),
@@ -294,7 +307,10 @@ fn checked_label(label: &str) -> Result<(), ApiError> {
 /// The upload folder (relative to a root) for this split and label.
 fn upload_folder(folder: &str, params: &UploadParams) -> Result<PathBuf, ApiError> {
     let mut relative = PathBuf::from(folder);
-    if !relative.components().all(|c| matches!(c, Component::Normal(_))) {
+    if !relative
+        .components()
+        .all(|c| matches!(c, Component::Normal(_)))
+    {
         return Err(ApiError::internal(format!(
             "the configured upload folder `{folder}` is not a relative path without `..`"
         )));
@@ -358,11 +374,17 @@ fn save_new_file(dir: &Path, name: &str, bytes: &[u8]) -> Result<PathBuf, ApiErr
         } else {
             dir.join(format!("{stem}-{attempt}.{extension}"))
         };
-        match OpenOptions::new().write(true).create_new(true).open(&candidate) {
+        match OpenOptions::new()
+            .write(true)
+            .create_new(true)
+            .open(&candidate)
+        {
             Ok(mut file) => {
                 file.write_all(bytes)
                     .and_then(|_| file.sync_all())
-                    .map_err(|e| ApiError::internal(format!("cannot write {}: {e}", candidate.display())))?;
+                    .map_err(|e| {
+                        ApiError::internal(format!("cannot write {}: {e}", candidate.display()))
+                    })?;
                 return Ok(candidate);
             }
             Err(e) if e.kind() == std::io::ErrorKind::AlreadyExists => continue,
@@ -384,13 +406,14 @@ fn save_new_file(dir: &Path, name: &str, bytes: &[u8]) -> Result<PathBuf, ApiErr
 /// Adds images: saves them in the upload folder of the collection's first
 /// root (never overwriting a file) and indexes them in a background job.
 #[utoipa::path(
+    operation_id = "upload_images",
     tag = "images",
     params(("collection" = String, Path, description = "Collection name"), UploadParams),
     request_body(
         description = "One image's bytes (image/*), or a multipart/form-data form with file fields",
         content(
-            (Vec<u8> = "image/*"),
-            (Vec<u8> = "multipart/form-data"),
+            (ImageBytes = "image/*"),
+            (ImageForm = "multipart/form-data"),
         )
     ),
     security(("bearer" = [])),

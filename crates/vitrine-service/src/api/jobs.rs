@@ -38,6 +38,7 @@ pub fn start_index_job(
 
 /// Re-indexes every root of the collection in the background.
 #[utoipa::path(
+    operation_id = "start_rescan",
     tag = "jobs",
     params(("collection" = String, Path, description = "Collection name")),
     security(("bearer" = [])),
@@ -68,6 +69,7 @@ pub async fn rescan(
 /// Recomputes the clustering for `k` and `seed` in the background; the
 /// summaries endpoint then answers from it.
 #[utoipa::path(
+    operation_id = "start_clustering",
     tag = "jobs",
     params(("collection" = String, Path, description = "Collection name"), ClusterParams),
     security(("bearer" = [])),
@@ -104,6 +106,7 @@ pub async fn recluster(
 
 /// A job's state, progress, counts and error.
 #[utoipa::path(
+    operation_id = "job_status",
     tag = "jobs",
     params(
         ("collection" = String, Path, description = "Collection name"),

@@ -43,7 +43,11 @@ impl LabelParams {
         let defaults = LabelOptions::default();
         Ok(LabelOptions {
             k: checked_k(Some(self.k.unwrap_or(defaults.k)), settings)?,
-            min_confidence: share("min_confidence", self.min_confidence, defaults.min_confidence)?,
+            min_confidence: share(
+                "min_confidence",
+                self.min_confidence,
+                defaults.min_confidence,
+            )?,
             min_disagreement: share(
                 "min_disagreement",
                 self.min_disagreement,
@@ -94,6 +98,7 @@ pub struct SuggestionsPage {
 
 /// A label for every unlabelled image, from its labelled neighbours.
 #[utoipa::path(
+    operation_id = "label_suggestions",
     tag = "labels",
     params(("collection" = String, Path, description = "Collection name"), LabelParams),
     responses(
@@ -175,6 +180,7 @@ pub struct SuspectsPage {
 
 /// Labelled images whose neighbours strongly disagree with their label.
 #[utoipa::path(
+    operation_id = "label_suspects",
     tag = "labels",
     params(("collection" = String, Path, description = "Collection name"), LabelParams),
     responses(

@@ -9,17 +9,18 @@ use super::images::NeighbourParams;
 use super::{blocking, checked_k, filter_of, Hits, State};
 use crate::collection::Query;
 use crate::error::{ApiError, ErrorBody};
-use crate::upload::read_uploads;
+use crate::upload::{read_uploads, ImageBytes, ImageForm};
 
 /// Images most similar to an uploaded image, best first.
 #[utoipa::path(
+    operation_id = "search_by_image",
     tag = "search",
     params(("collection" = String, Path, description = "Collection name"), NeighbourParams),
     request_body(
         description = "The image's bytes (image/*), or a multipart/form-data form with a file field",
         content(
-            (Vec<u8> = "image/*"),
-            (Vec<u8> = "multipart/form-data"),
+            (ImageBytes = "image/*"),
+            (ImageForm = "multipart/form-data"),
         )
     ),
     responses(
@@ -88,6 +89,7 @@ pub struct VectorSearch {
 
 /// Images whose embeddings are most similar to a vector, best first.
 #[utoipa::path(
+    operation_id = "search_by_vector",
     tag = "search",
     params(("collection" = String, Path, description = "Collection name")),
     request_body = VectorSearch,

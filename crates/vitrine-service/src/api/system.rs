@@ -18,7 +18,7 @@ pub struct Health {
 }
 
 /// Liveness: the process answers.
-#[utoipa::path(tag = "system", responses((status = 200, body = Health)))]
+#[utoipa::path(operation_id = "healthz", tag = "system", responses((status = 200, body = Health)))]
 #[get("/healthz")]
 pub async fn healthz() -> HttpResponse {
     HttpResponse::Ok().json(Health {
@@ -37,7 +37,7 @@ pub struct Readiness {
 }
 
 /// Readiness: collections are open (they are opened before the server listens).
-#[utoipa::path(tag = "system", responses((status = 200, body = Readiness)))]
+#[utoipa::path(operation_id = "readyz", tag = "system", responses((status = 200, body = Readiness)))]
 #[get("/readyz")]
 pub async fn readyz(state: State) -> HttpResponse {
     let model_problem = match &state.model {
@@ -54,6 +54,7 @@ pub async fn readyz(state: State) -> HttpResponse {
 
 /// Prometheus metrics in the text exposition format.
 #[utoipa::path(
+    operation_id = "metrics",
     tag = "system",
     responses((status = 200, description = "Prometheus text format", content_type = "text/plain", body = String))
 )]
@@ -67,6 +68,7 @@ pub async fn metrics(state: State) -> Result<HttpResponse, ApiError> {
 
 /// This API's OpenAPI 3 document.
 #[utoipa::path(
+    operation_id = "openapi_document",
     tag = "system",
     responses((status = 200, description = "OpenAPI 3 document", content_type = "application/json", body = Object))
 )]
@@ -81,9 +83,8 @@ pub async fn openapi() -> HttpResponse {
 struct PageFiles;
 
 fn page_file(name: &str) -> Result<HttpResponse, ApiError> {
-    let file = PageFiles::get(name).ok_or_else(|| {
-        ApiError::not_found("not_found", format!("no page file named `{name}`"))
-    })?;
+    let file = PageFiles::get(name)
+        .ok_or_else(|| ApiError::not_found("not_found", format!("no page file named `{name}`")))?;
     Ok(HttpResponse::Ok()
         .content_type(file.metadata.mimetype())
         .insert_header((header::CACHE_CONTROL, "no-cache"))

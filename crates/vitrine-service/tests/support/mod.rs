@@ -68,7 +68,10 @@ pub fn picture(label: usize, seed: u32, size: u32) -> RgbImage {
 pub fn png_bytes(image: &RgbImage) -> Vec<u8> {
     let mut bytes = Vec::new();
     image
-        .write_to(&mut std::io::Cursor::new(&mut bytes), image::ImageFormat::Png)
+        .write_to(
+            &mut std::io::Cursor::new(&mut bytes),
+            image::ImageFormat::Png,
+        )
         .expect("encoding a PNG in memory");
     bytes
 }
@@ -126,7 +129,13 @@ impl Fixture {
         let encoder = encoder();
         let (ids, embeddings, paths) = {
             let mut store = Store::create_or_open(&store_dir, &fingerprint_of(&encoder))?;
-            index_roots(&mut store, &encoder, &[root.clone()], &index_options(), &NoProgress)?;
+            index_roots(
+                &mut store,
+                &encoder,
+                &[root.clone()],
+                &index_options(),
+                &NoProgress,
+            )?;
             let (ids, flat) = store.all_embeddings()?;
             let dim = store.fingerprint().dim;
             let embeddings = flat.chunks(dim).map(<[f32]>::to_vec).collect();
@@ -337,7 +346,12 @@ pub async fn wait_for_job(client: &awc::Client, server: &RunningServer, id: u64)
 
 /// Exact nearest neighbours by brute force over all embeddings: the
 /// reference the index's answers are checked against.
-pub fn brute_force(fixture: &Fixture, query: &[f32], exclude: Option<ImageId>, k: usize) -> Vec<(ImageId, f32)> {
+pub fn brute_force(
+    fixture: &Fixture,
+    query: &[f32],
+    exclude: Option<ImageId>,
+    k: usize,
+) -> Vec<(ImageId, f32)> {
     let mut scored: Vec<(ImageId, f32)> = fixture
         .ids
         .iter()
