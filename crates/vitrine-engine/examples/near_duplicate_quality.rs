@@ -22,7 +22,7 @@ use rand_chacha::ChaCha8Rng;
 use vitrine_engine::calibrate::{calibrate, CalibrationOptions, Edit, MILD_EDITS, STRONG_EDITS};
 use vitrine_engine::catalog::{dot, Catalog};
 use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions, NoProgress};
-use vitrine_engine::verify::{compare, ImageEvidence, VerifyOptions};
+use vitrine_engine::verify::{compare, ImageEvidence, PairCheck, VerifyOptions};
 use vitrine_imaging::{decode_path, preprocess, DecodeOptions, PreparedImage};
 use vitrine_model::config::Pooling;
 use vitrine_model::encoder::Encoder;
@@ -217,7 +217,7 @@ fn with_copies(
     Ok(out)
 }
 
-/// Accepts a candidate pair (cosine, lazily computed check).
+/// Which candidate pairs a rule keeps.
 enum Rule {
     Plain { threshold: f32 },
     Verified { candidate: f32 },
@@ -230,6 +230,58 @@ impl Rule {
             Rule::Verified { candidate } => format!("cand {candidate:.2} + verify"),
         }
     }
+
+    fn keeps(&self, pair: &Pair) -> bool {
+        match self {
+            Rule::Plain { threshold } => pair.cosine >= *threshold,
+            Rule::Verified { candidate } => {
+                pair.cosine >= *candidate && pair.check.is_some_and(|c| c.confirmed)
+            }
+        }
+    }
+}
+
+/// Lowest candidate threshold evaluated: pairs below it are never checked.
+const LOWEST_CANDIDATE: f32 = 0.5;
+
+/// A candidate pair: from someone's 10 nearest neighbours (class-token
+/// cosine, as the engine's default k), or a (copy, original) pair.
+struct Pair {
+    i: usize,
+    j: usize,
+    cosine: f32,
+    check: Option<PairCheck>,
+}
+
+fn candidate_pairs(items: &[Item], options: &VerifyOptions) -> Vec<Pair> {
+    const K: usize = 10;
+    let n = items.len();
+    let mut keys: HashSet<(usize, usize)> = HashSet::new();
+    for i in 0..n {
+        let mut scored: Vec<(f32, usize)> = (0..n)
+            .filter(|&j| j != i)
+            .map(|j| (dot(&items[i].cls, &items[j].cls), j))
+            .collect();
+        scored.sort_by(|a, b| b.0.total_cmp(&a.0));
+        for &(_, j) in scored.iter().take(K) {
+            keys.insert((i.min(j), i.max(j)));
+        }
+    }
+    let mut keys: Vec<(usize, usize)> = keys.into_iter().collect();
+    keys.sort_unstable();
+    keys.into_iter()
+        .map(|(i, j)| {
+            let cosine = dot(&items[i].cls, &items[j].cls);
+            let check = (cosine >= LOWEST_CANDIDATE)
+                .then(|| compare(&items[i].evidence, &items[j].evidence, options));
+            Pair {
+                i,
+                j,
+                cosine,
+                check,
+            }
+        })
+        .collect()
 }
 
 struct Outcome {
@@ -247,40 +299,17 @@ fn find(parent: &mut [usize], x: usize) -> usize {
     root
 }
 
-/// Edges from each item's 10 nearest neighbours (cosine of class tokens),
-/// kept by `rule`; recall = copies in their original's component, precision
-/// = kept edges joining the same source.
-fn evaluate(items: &[Item], rule: &Rule, options: &VerifyOptions) -> Outcome {
-    const K: usize = 10;
+/// Recall = copies in their original's component; precision = kept edges
+/// joining the same source; merged = pairs of distinct originals joined.
+fn evaluate(items: &[Item], pairs: &[Pair], rule: &Rule) -> Outcome {
     let n = items.len();
-    let mut pairs: HashSet<(usize, usize)> = HashSet::new();
-    for i in 0..n {
-        let mut scored: Vec<(f32, usize)> = (0..n)
-            .filter(|&j| j != i)
-            .map(|j| (dot(&items[i].cls, &items[j].cls), j))
-            .collect();
-        scored.sort_by(|a, b| b.0.total_cmp(&a.0));
-        for &(_, j) in scored.iter().take(K) {
-            pairs.insert((i.min(j), i.max(j)));
-        }
-    }
     let mut parent: Vec<usize> = (0..n).collect();
     let (mut kept, mut correct) = (0usize, 0usize);
-    for (i, j) in pairs {
-        let cosine = dot(&items[i].cls, &items[j].cls);
-        let accept = match rule {
-            Rule::Plain { threshold } => cosine >= *threshold,
-            Rule::Verified { candidate } => {
-                cosine >= *candidate
-                    && compare(&items[i].evidence, &items[j].evidence, options).confirmed
-            }
-        };
-        if accept {
-            kept += 1;
-            correct += usize::from(items[i].source == items[j].source);
-            let (a, b) = (find(&mut parent, i), find(&mut parent, j));
-            parent[a] = b;
-        }
+    for pair in pairs.iter().filter(|p| rule.keeps(p)) {
+        kept += 1;
+        correct += usize::from(items[pair.i].source == items[pair.j].source);
+        let (a, b) = (find(&mut parent, pair.i), find(&mut parent, pair.j));
+        parent[a] = b;
     }
     let original_of = |source: usize| {
         items
@@ -313,63 +342,32 @@ fn evaluate(items: &[Item], rule: &Rule, options: &VerifyOptions) -> Outcome {
     }
 }
 
-/// Verification scores of (copy, original) pairs and of the cross-source
-/// pairs a candidate threshold lets through.
-fn score_spread(items: &[Item], candidate: f32, options: &VerifyOptions) {
-    let quantiles = |mut v: Vec<f32>| -> String {
-        if v.is_empty() {
-            return "none".into();
-        }
-        v.sort_by(f32::total_cmp);
-        let q = |p: f64| v[((v.len() - 1) as f64 * p).round() as usize];
-        format!(
-            "n={:4} min {:.2} p10 {:.2} p50 {:.2} p90 {:.2} max {:.2}",
-            v.len(),
-            q(0.0),
-            q(0.1),
-            q(0.5),
-            q(0.9),
-            q(1.0)
-        )
-    };
-    let mut positives = Vec::new();
-    let mut negatives = Vec::new();
-    let mut worst_negative = (f32::NEG_INFINITY, 0, 0);
-    for i in 0..items.len() {
-        for j in i + 1..items.len() {
-            let same = items[i].source == items[j].source;
-            let original_pair = same && (items[i].edit.is_none() || items[j].edit.is_none());
-            if same && !original_pair {
-                continue;
-            }
-            if !same && dot(&items[i].cls, &items[j].cls) < candidate {
-                continue;
-            }
-            let score = compare(&items[i].evidence, &items[j].evidence, options).score;
-            if same {
-                positives.push(score);
-            } else {
-                negatives.push(score);
-                if score > worst_negative.0 {
-                    worst_negative = (score, i, j);
-                }
-            }
-        }
+fn quantiles(mut v: Vec<f32>) -> String {
+    if v.is_empty() {
+        return "none".into();
     }
-    println!("    copy-original scores:   {}", quantiles(positives));
-    println!(
-        "    distinct (cos>={candidate:.2}): {}",
-        quantiles(negatives)
-    );
+    v.sort_by(f32::total_cmp);
+    let q = |p: f64| v[((v.len() - 1) as f64 * p).round() as usize];
+    format!(
+        "n={:4} min {:.2} p10 {:.2} p50 {:.2} p90 {:.2} max {:.2}",
+        v.len(),
+        q(0.0),
+        q(0.1),
+        q(0.5),
+        q(0.9),
+        q(1.0)
+    )
 }
 
+/// Per edit: cosine to the original, and the verification verdict.
 fn per_edit_table(items: &[Item], options: &VerifyOptions) {
     println!(
-        "    {:<14} {:>8} {:>8} {:>9}",
+        "    {:<14} {:>8} {:>8} {:>9}  verification scores",
         "edit", "cos min", "cos mean", "verified"
     );
     for edit in MILD_EDITS.iter().chain(STRONG_EDITS) {
         let mut cos = Vec::new();
+        let mut scores = Vec::new();
         let mut verified = 0;
         for item in items.iter().filter(|it| it.edit == Some(*edit)) {
             let Some(original) = items
@@ -379,7 +377,9 @@ fn per_edit_table(items: &[Item], options: &VerifyOptions) {
                 continue;
             };
             cos.push(dot(&item.cls, &original.cls));
-            verified += usize::from(compare(&original.evidence, &item.evidence, options).confirmed);
+            let check = compare(&original.evidence, &item.evidence, options);
+            verified += usize::from(check.confirmed);
+            scores.push(check.score);
         }
         if cos.is_empty() {
             continue;
@@ -387,12 +387,13 @@ fn per_edit_table(items: &[Item], options: &VerifyOptions) {
         let min = cos.iter().copied().fold(f32::INFINITY, f32::min);
         let mean = cos.iter().sum::<f32>() / cos.len() as f32;
         println!(
-            "    {:<14} {:>8.3} {:>8.3} {:>5}/{:<3}",
+            "    {:<14} {:>8.3} {:>8.3} {:>5}/{:<3}  {}",
             edit.name(),
             min,
             mean,
             verified,
-            cos.len()
+            cos.len(),
+            quantiles(scores)
         );
     }
 }
@@ -400,7 +401,8 @@ fn per_edit_table(items: &[Item], options: &VerifyOptions) {
 /// Recall of (copy, original) pairs at the lowest threshold with no
 /// cross-source pair above it, and at precision >= 0.99 (all pairs).
 fn pooling_table(label: &str, items: &[Item]) {
-    let poolings: [(&str, fn(&Item, &Item) -> f32); 3] = [
+    type PairSimilarity = fn(&Item, &Item) -> f32;
+    let poolings: [(&str, PairSimilarity); 3] = [
         ("cls", |a, b| dot(&a.cls, &b.cls)),
         ("mean", |a, b| dot(&a.mean, &b.mean)),
         ("cls+mean", |a, b| {
@@ -494,8 +496,9 @@ fn main() -> Result<()> {
                 Rule::Verified { candidate: 0.60 },
                 Rule::Verified { candidate: 0.70 },
             ];
+            let pairs = candidate_pairs(&items, &options);
             for rule in &rules {
-                let o = evaluate(&items, rule, &options);
+                let o = evaluate(&items, &pairs, rule);
                 println!(
                     "    {:<22} {:>9.3} {:>7.3} {:>16}",
                     rule.name(),
@@ -504,7 +507,12 @@ fn main() -> Result<()> {
                     o.merged_originals
                 );
             }
-            score_spread(&items, 0.5, &options);
+            let distinct: Vec<f32> = pairs
+                .iter()
+                .filter(|p| items[p.i].source != items[p.j].source)
+                .filter_map(|p| p.check.map(|c| c.score))
+                .collect();
+            println!("    verification scores of distinct candidate pairs (cos >= {LOWEST_CANDIDATE}): {}", quantiles(distinct));
             per_edit_table(&items, &options);
             all_items.push((label, items));
         }

@@ -623,7 +623,7 @@ mod tests {
         let report = sample.report(&options);
         // 0.6 and 0.75 let the 0.80 negative through; 0.85 is the lowest clean one.
         assert_eq!(report.recommended_threshold, Some(0.85));
-        assert_eq!(report.points[0].false_positives, 2);
+        assert_eq!(report.points[0].false_positives, 1);
         assert_eq!(report.max_negative_similarity, 0.8);
     }
 }

@@ -83,6 +83,9 @@ pub struct PairCheck {
     pub inliers: usize,
 }
 
+/// A point of the first image's crop and where it is in the second's.
+type Correspondence = ([f32; 2], [f32; 2]);
+
 /// `x' = scale·R(angle)·x + shift`, in pixels of the model's input crop.
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct SimilarityTransform {
@@ -129,12 +132,12 @@ impl SimilarityTransform {
 
     /// Least-squares fit to many correspondences (closed form for
     /// similarity transforms).
-    fn fit(pairs: &[([f32; 2], [f32; 2])]) -> Option<Self> {
+    fn fit(pairs: &[Correspondence]) -> Option<Self> {
         let n = pairs.len() as f32;
         if pairs.len() < 2 {
             return None;
         }
-        let mean = |pick: fn(&([f32; 2], [f32; 2])) -> [f32; 2]| {
+        let mean = |pick: fn(&Correspondence) -> [f32; 2]| {
             let sum = pairs
                 .iter()
                 .map(pick)
@@ -191,10 +194,6 @@ impl ImageEvidence {
         let side = self.crop_side / self.tokens.cols as f32;
         let (row, col) = (index / self.tokens.cols, index % self.tokens.cols);
         [(col as f32 + 0.5) * side, (row as f32 + 0.5) * side]
-    }
-
-    fn token(&self, index: usize) -> &[f32] {
-        &self.tokens.normalised[index * self.tokens.dim..(index + 1) * self.tokens.dim]
     }
 
     fn patch_count(&self) -> usize {
@@ -301,7 +300,7 @@ fn fit_transform(
     matches: &[(usize, usize)],
     options: &VerifyOptions,
 ) -> Option<(SimilarityTransform, usize)> {
-    let points: Vec<([f32; 2], [f32; 2])> = matches
+    let points: Vec<Correspondence> = matches
         .iter()
         .map(|&(i, j)| (a.patch_centre(i), b.patch_centre(j)))
         .collect();
@@ -313,7 +312,7 @@ fn fit_transform(
             && scale >= 1.0 / options.max_scale_ratio
             && t.rotation_degrees().abs() <= options.max_rotation_degrees
     };
-    let inliers_of = |t: &SimilarityTransform| -> Vec<([f32; 2], [f32; 2])> {
+    let inliers_of = |t: &SimilarityTransform| -> Vec<Correspondence> {
         points
             .iter()
             .filter(|(p, q)| {

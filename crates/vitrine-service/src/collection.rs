@@ -182,13 +182,37 @@ impl Collection {
             return Ok(match query {
                 Query::Image(id) => nearest_to_image(&store, catalog, id, k, filter)?,
                 Query::Vector(vector) => {
-                    nearest_to_vector(&store, catalog, vector, k, filter, None)?
+                    let unit = unit_query(catalog, vector)?;
+                    nearest_to_vector(&store, catalog, &unit, k, filter, None)?
                 }
             });
         }
         let snapshot = self.snapshot();
         exact_nearest(&snapshot.catalog, query, k, filter)
     }
+}
+
+/// The query vector scaled to unit length, once checked to have the
+/// collection's dimension and a finite, non-zero length.
+fn unit_query(catalog: &Catalog, vector: &[f32]) -> Result<Vec<f32>, ApiError> {
+    if vector.len() != catalog.dim {
+        return Err(ApiError::bad_request(
+            "dimension_mismatch",
+            format!(
+                "query vector has {} dimensions, the collection has {}",
+                vector.len(),
+                catalog.dim
+            ),
+        ));
+    }
+    let norm = dot(vector, vector).sqrt();
+    if !norm.is_normal() {
+        return Err(ApiError::bad_request(
+            "invalid_vector",
+            "query vector is not a finite, non-zero vector",
+        ));
+    }
+    Ok(vector.iter().map(|v| v / norm).collect())
 }
 
 fn accepts(filter: &NeighbourFilter, record: &ImageRecord) -> bool {
@@ -219,26 +243,7 @@ fn exact_nearest(
             let row = catalog.row(id).ok_or(EngineError::UnknownImage(id))?;
             (catalog.embedding_at(row).to_vec(), Some(row))
         }
-        Query::Vector(vector) => {
-            if vector.len() != catalog.dim {
-                return Err(ApiError::bad_request(
-                    "dimension_mismatch",
-                    format!(
-                        "query vector has {} dimensions, the collection has {}",
-                        vector.len(),
-                        catalog.dim
-                    ),
-                ));
-            }
-            let norm = dot(vector, vector).sqrt();
-            if !norm.is_normal() {
-                return Err(ApiError::bad_request(
-                    "invalid_vector",
-                    "query vector is not a finite, non-zero vector",
-                ));
-            }
-            (vector.iter().map(|v| v / norm).collect(), None)
-        }
+        Query::Vector(vector) => (unit_query(catalog, vector)?, None),
     };
     let mut scored: Vec<(usize, f32)> = (0..catalog.len())
         .filter(|&row| Some(row) != exclude && accepts(filter, &catalog.records[row]))

@@ -100,14 +100,18 @@ pub async fn record(
     let route = req.match_pattern().unwrap_or_else(|| "unmatched".into());
     let method = req.method().as_str().to_owned();
     let state = req.app_data::<web::Data<AppState>>().cloned();
-    let response = next.call(req).await?;
+    let response = next.call(req).await;
     if let Some(state) = state {
+        let status = match &response {
+            Ok(response) => response.status(),
+            Err(error) => error.as_response_error().status_code(),
+        };
         state.metrics.observe(
             &route,
             &method,
-            response.status().as_u16(),
+            status.as_u16(),
             started.elapsed().as_secs_f64(),
         );
     }
-    Ok(response)
+    response
 }

@@ -3,7 +3,7 @@
 use std::net::{IpAddr, Ipv4Addr, SocketAddr};
 use std::time::Duration;
 
-use actix_web::body::{BoxBody, EitherBody, MessageBody};
+use actix_web::body::MessageBody;
 use actix_web::dev::{Server, ServerHandle, ServiceRequest, ServiceResponse};
 use actix_web::http::{header, StatusCode};
 use actix_web::middleware::{from_fn, ErrorHandlerResponse, ErrorHandlers, Next};
@@ -63,23 +63,22 @@ fn json_errors<B: MessageBody + 'static>(
 }
 
 /// Answers 503 `request_timeout` when a request takes longer than allowed.
+/// (The error becomes our JSON response where actix turns errors into
+/// responses; the request itself must not be cloned before routing.)
 async fn time_limit(
     req: ServiceRequest,
     next: Next<impl MessageBody + 'static>,
-) -> Result<ServiceResponse<EitherBody<impl MessageBody, BoxBody>>, actix_web::Error> {
+) -> Result<ServiceResponse<impl MessageBody>, actix_web::Error> {
     let limit = req
         .app_data::<web::Data<AppState>>()
         .map_or(30, |s| s.settings.request_timeout_s);
-    let http_request = req.request().clone();
     match actix_web::rt::time::timeout(Duration::from_secs(limit), next.call(req)).await {
-        Ok(response) => Ok(response?.map_into_left_body()),
-        Err(_) => {
-            let error = ApiError::unavailable(
-                "request_timeout",
-                format!("the request took longer than {limit} s"),
-            );
-            Ok(ServiceResponse::new(http_request, error.error_response()).map_into_right_body())
-        }
+        Ok(response) => response,
+        Err(_) => Err(ApiError::unavailable(
+            "request_timeout",
+            format!("the request took longer than {limit} s"),
+        )
+        .into()),
     }
 }
 

@@ -14,8 +14,11 @@
     pixels: 'identical pixels',
     near: 'near-duplicate',
   };
-  // Distinguishable on a light background and for common colour-vision deficiencies.
-  const SPLIT_COLOURS = ['#1f4e8c', '#c2410c', '#1d6a38', '#6a3d9e', '#8a4a08', '#0f5f5a'];
+  // Distinguishable on a light background and for common colour-vision deficiencies;
+  // the usual splits keep one colour everywhere, others take the rest in turn.
+  const SPLIT_COLOURS = { train: '#1f4e8c', val: '#c2410c', validation: '#c2410c', test: '#1d6a38', '(none)': '#6b717b' };
+  const OTHER_SPLIT_COLOURS = ['#6a3d9e', '#8a4a08', '#0f5f5a', '#a3261b'];
+  const SPLIT_ORDER = ['train', 'val', 'validation', 'test'];
 
   const state = {
     collections: [],
@@ -939,8 +942,8 @@
     await fill(ctx, slot, 'Clustering the collection…', async () => {
       const data = await api(collectionPath('/clusters') + queryString(q), { signal: ctx.signal });
       const clusters = listOf(data, 'clusters');
-      if (!q.k && typeof data.n_clusters === 'number') kInput.placeholder = `auto (${data.n_clusters})`;
-      if (!q.seed && data.seed !== undefined) seedInput.placeholder = `default (${data.seed})`;
+      if (!q.k && typeof data.n_clusters === 'number') kInput.placeholder = `auto: ${data.n_clusters}`;
+      if (!q.seed && data.seed !== undefined) seedInput.placeholder = String(data.seed);
       announce(`${clusters.length} clusters.`);
       if (!clusters.length) return emptyState('No clusters.', 'The collection needs a few indexed images first.');
       const list = h('ol', { class: 'cluster-grid', dataset: { testid: 'clusters' }, 'aria-label': 'Clusters' },
@@ -951,15 +954,20 @@
   }
 
   function splitMix(mix) {
-    const rows = listOf(mix).map((r) => ({ split: pick(r, 'split', 'name') || 'none', count: pick(r, 'count') || 0 }));
+    const rank = (split) => {
+      const known = SPLIT_ORDER.indexOf(split);
+      return known >= 0 ? known : split === NO_VALUE ? 99 : 50;
+    };
+    const rows = listOf(mix).map((r) => ({ split: pick(r, 'split', 'name') || NO_VALUE, count: pick(r, 'count') || 0 }))
+      .sort((a, b) => rank(a.split) - rank(b.split) || a.split.localeCompare(b.split));
     const total = rows.reduce((sum, r) => sum + r.count, 0) || 1;
-    const names = splitNames();
-    const colour = (split) => SPLIT_COLOURS[(names.indexOf(split) + SPLIT_COLOURS.length) % SPLIT_COLOURS.length];
+    const others = splitNames().filter((name) => !SPLIT_COLOURS[name]);
+    const colour = (split) => SPLIT_COLOURS[split] || OTHER_SPLIT_COLOURS[Math.max(0, others.indexOf(split)) % OTHER_SPLIT_COLOURS.length];
     return h('div', {},
       h('div', { class: 'splitmix', 'aria-hidden': 'true' },
         rows.map((r) => h('span', { style: `width:${(100 * r.count) / total}%;background:${colour(r.split)}` }))),
       h('ul', { class: 'legend', 'aria-label': 'Split mix' },
-        rows.map((r) => h('li', {}, h('i', { style: `background:${colour(r.split)}`, 'aria-hidden': 'true' }), `${r.split} ${r.count}`))));
+        rows.map((r) => h('li', {}, h('i', { style: `background:${colour(r.split)}`, 'aria-hidden': 'true' }), `${r.split === NO_VALUE ? 'no split' : r.split} ${r.count}`))));
   }
 
   function topLabels(labels) {
@@ -1045,13 +1053,12 @@
         listOf(overview, 'clusters').find((c) => String(pick(c, 'index', 'id')) === String(arg)) || {};
       const members = listOf(data, 'members', 'images', 'items').map(imageOf);
       const total = pick(data, 'total') !== undefined ? pick(data, 'total') : pick(summary, 'size');
-      const parts = [];
-      if (typeof total === 'number') parts.push(h('span', {}, `${total} images`));
-      if (summary.cohesion !== undefined) parts.push(h('span', {}, ` · cohesion ${formatScore(summary.cohesion)}`));
-      facts.replaceChildren(h('div', { class: 'toolbar' },
-        h('div', {}, parts),
-        pick(summary, 'top_labels') ? h('div', { style: 'min-width:16rem' }, topLabels(summary.top_labels)) : null,
-        pick(summary, 'split_mix') ? h('div', { style: 'min-width:14rem' }, splitMix(summary.split_mix)) : null));
+      const fact = (label, ...value) => h('div', { class: 'field' }, h('span', {}, label), h('div', {}, value));
+      facts.replaceChildren(h('div', { class: 'toolbar cluster-facts' },
+        typeof total === 'number' ? fact('Images', h('strong', {}, String(total))) : null,
+        summary.cohesion !== undefined ? fact('Cohesion', h('strong', {}, formatScore(summary.cohesion))) : null,
+        pick(summary, 'top_labels') ? fact('Top labels', topLabels(summary.top_labels)) : null,
+        pick(summary, 'split_mix') ? fact('Split mix', splitMix(summary.split_mix)) : null));
       if (!members.length) return emptyState('This cluster has no members on this page.', 'Go back to the first page.');
       return [
         h('ul', { class: 'grid', dataset: { testid: 'cluster-members' } }, members.map((m) => imageCard(m, {
@@ -1093,7 +1100,7 @@
     root.append(
       viewHead(img.path || `Image ${arg}`, null, h('a', { class: 'button primary', href: href('/search', { id: img.id }) }, 'Search with this image')),
       h('div', { class: 'detail' },
-        h('img', { class: 'big', src: thumbnailUrl(img.id, DETAIL_SIZE), alt: altText(img) }),
+        h('img', { class: 'big', src: thumbnailUrl(img.id, DETAIL_SIZE), alt: altText(img), width: img.width, height: img.height }),
         h('div', {},
           h('dl', { class: 'facts' }, facts.map(([k, v]) => [h('dt', {}, k), h('dd', {}, v)])),
           suggestionSlot)),
@@ -1135,13 +1142,13 @@
    * unlabelled image, or a warning when a labelled image's neighbours disagree.
    */
   async function labelSuggestion(ctx, img) {
-    const box = (cls, ...content) => h('div', { class: `suggestion ${cls}`, dataset: { testid: 'suggestion' } },
-      h('h2', {}, 'Label suggestion'), content,
-      h('p', { class: 'kv' }, 'From a similarity-weighted vote of labelled neighbours: a hint to review, not a verdict.'));
     const listing = img.label ? 'suspects' : 'suggestions';
     const { found, gaveUp } = await findInListing(ctx, listing, img.id);
     const suggested = found && pick(found, 'suggested_label');
     const confidence = found && pick(found, 'confidence');
+    const box = (cls, ...content) => h('div', { class: `suggestion ${cls}`, dataset: { testid: 'suggestion', suggested: suggested || '' } },
+      h('h2', {}, 'Label suggestion'), content,
+      h('p', { class: 'kv' }, 'From a similarity-weighted vote of labelled neighbours: a hint to review, not a verdict.'));
     if (img.label) {
       if (!found) {
         return box('', h('p', {}, gaveUp

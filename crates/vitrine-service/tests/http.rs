@@ -208,7 +208,7 @@ fn every_endpoint_over_http() -> Result<()> {
         let metrics = String::from_utf8(get("/metrics").await?.bytes)?;
         assert!(metrics.contains("vitrine_http_requests_total{method=\"GET\",route=\"/api/v1/collections/{collection}/status\",status=\"200\"}"), "{metrics}");
         assert!(metrics.contains("vitrine_index_images{collection=\"shop\"} 23"));
-        assert!(metrics.contains("vitrine_jobs{state=\"succeeded\"} 5"));
+        assert!(metrics.contains("vitrine_jobs{state=\"succeeded\"} 4"));
         let openapi = get("/openapi.json").await?.json();
         let expected: Value = serde_json::from_str(&vitrine_service::openapi_json())?;
         assert_eq!(openapi, expected);

