@@ -134,7 +134,7 @@ test('duplicates: a planted exact-copy group is shown with one suggested keeper'
   // At the default threshold this synthetic catalogue chains whole product
   // lines together; the screenshot shows a stricter reviewer's setting.
   await page.goto(`${server.url}/#/duplicates?threshold=0.970`);
-  await page.waitForSelector('[data-testid="groups"] .group');
+  await page.waitForSelector('[data-testid="groups"][data-threshold="0.970"] .group');
   await shot('duplicates');
 });
 
@@ -145,15 +145,14 @@ test('duplicates: the threshold control re-queries the groups', async () => {
   const holdsPair = (groups) => groups.some((g) => g.includes(planted.original) && g.includes(planted.edited));
 
   await page.goto(`${server.url}/#/duplicates?threshold=0.900&per_page=500`);
-  await page.waitForSelector('[data-testid="groups"] .group');
+  await page.waitForSelector('[data-testid="groups"][data-threshold="0.900"] .group');
   const loose = await groupPaths();
   assert.ok(holdsPair(loose), `at 0.900 the planted ${planted.edit} pair forms a group`);
 
   // The slider moved to its top end with the keyboard: only identical embeddings remain near-duplicates.
   await page.focus('#threshold');
   await page.keyboard.press('End');
-  await page.waitForFunction(() => location.hash.includes('threshold=1.000'));
-  await page.waitForSelector('[data-testid="groups"] .group');
+  await page.waitForSelector('[data-testid="groups"][data-threshold="1.000"] .group');
   const strict = await groupPaths();
   // Ground truth: a re-encoded or edited copy differs in pixels, so its embedding is not identical.
   assert.ok(!holdsPair(strict), 'at 1.000 the edited pair is no longer grouped');
@@ -223,6 +222,9 @@ test('image detail: metadata, neighbours and label suggestion', async () => {
   let shown = 0;
   for (const { path: file, true_label: truthLabel } of truth.unlabelled) {
     await page.goto(`${server.url}/#/image/${ids.get(file)}`);
+    // The previous image's page stays until this one's metadata arrives.
+    await page.waitForFunction((expected) => document.querySelector('h1')?.textContent === expected &&
+      document.querySelector('[data-testid="suggestion"]'), file);
     const suggested = await page.getAttribute('[data-testid="suggestion"]', 'data-suggested');
     if (!suggested) continue;
     assert.equal(suggested, truthLabel, `suggestion for ${file}`);

@@ -524,6 +524,10 @@ fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
         started.elapsed().as_secs_f64(),
         store.len()
     );
+    println!(
+        "time: decode and preprocess {:.1} s, forward passes {:.1} s, store {:.1} s",
+        report.decode_seconds, report.forward_seconds, report.store_seconds
+    );
     if report.failed > 0 {
         println!("see `vitrine status --errors` for the files that failed");
     }

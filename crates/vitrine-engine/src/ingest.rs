@@ -57,7 +57,7 @@ impl Default for IndexOptions {
 }
 
 /// Counts of one index run, over all roots.
-#[derive(Clone, Debug, Default, PartialEq, Eq)]
+#[derive(Clone, Debug, Default, PartialEq)]
 pub struct IndexReport {
     pub new: usize,
     pub changed: usize,
@@ -69,6 +69,12 @@ pub struct IndexReport {
     pub reused_embeddings: usize,
     /// Files that are not images and do not claim to be (no image extension).
     pub skipped_non_images: usize,
+    /// Wall time spent reading, hashing, decoding and preprocessing.
+    pub decode_seconds: f64,
+    /// Wall time spent in forward passes.
+    pub forward_seconds: f64,
+    /// Wall time spent committing to the store and saving the index.
+    pub store_seconds: f64,
 }
 
 impl std::fmt::Display for IndexReport {
@@ -162,7 +168,9 @@ pub fn index_roots(
     for root in roots {
         index_one_root(store, encoder, root, options, progress, &mut report)?;
     }
+    let saving = Instant::now();
     store.save_index()?;
+    report.store_seconds += saving.elapsed().as_secs_f64();
     tracing::info!(elapsed_s = started.elapsed().as_secs_f64(), "{report}");
     Ok(report)
 }
@@ -251,7 +259,9 @@ fn index_one_root(
     progress.begin(pending.len() as u64);
     for chunk in pending.chunks(options.commit_every.max(1)) {
         let changes = embed_chunk(store, encoder, root_id, chunk, options, report)?;
+        let committing = Instant::now();
         store.commit(changes)?;
+        report.store_seconds += committing.elapsed().as_secs_f64();
         progress.advance(chunk.len() as u64);
     }
     progress.finish();
@@ -294,6 +304,7 @@ fn embed_chunk(
         target_shorter_side: Some(spec.resize_shorter),
         ..options.decode.clone()
     };
+    let decoding = Instant::now();
     let outcomes: Vec<Outcome> = chunk
         .par_iter()
         .enumerate()
@@ -315,6 +326,7 @@ fn embed_chunk(
         })
         .collect();
 
+    report.decode_seconds += decoding.elapsed().as_secs_f64();
     let mut changes = ChangeSet::default();
     let mut to_embed: Vec<Decoded> = Vec::new();
     let mut ready: Vec<(Decoded, Vec<f32>)> = Vec::new();
@@ -347,12 +359,14 @@ fn embed_chunk(
         }
     }
 
+    let forwarding = Instant::now();
     let mut embedded: Vec<Vec<f32>> = Vec::with_capacity(to_embed.len());
     for batch in to_embed.chunks(options.batch_size.max(1)) {
         let images: Vec<&PreparedImage> =
             batch.iter().filter_map(|d| d.prepared.as_ref()).collect();
         embedded.extend(encoder.embed(&images)?);
     }
+    report.forward_seconds += forwarding.elapsed().as_secs_f64();
     for (decoded, first) in copies_of {
         ready.push((decoded, embedded[first].clone()));
     }

@@ -758,7 +758,11 @@
           'Lower the similarity threshold to include looser near-duplicates.');
       }
       const offset = (page - 1) * perPage;
-      const list = h('ol', { class: 'review-list tiles', dataset: { testid: 'groups' }, 'aria-label': 'Duplicate groups' });
+      const list = h('ol', {
+        class: 'review-list tiles',
+        dataset: { testid: 'groups', threshold: shownThreshold !== undefined ? shownThreshold.toFixed(3) : '' },
+        'aria-label': 'Duplicate groups',
+      });
       const fragment = document.createDocumentFragment();
       groups.forEach((group, index) => fragment.append(h('li', {}, duplicateGroup(group, offset + index + 1))));
       list.append(fragment);
