@@ -12,9 +12,9 @@ use futures_util::future::join_all;
 use support::*;
 
 const CONNECTIONS: usize = 32;
-const REQUESTS: usize = 2400;
+const REQUESTS: usize = 2000;
 /// One request in this many is a search by uploaded image (a forward pass).
-const UPLOAD_EVERY: usize = 40;
+const UPLOAD_EVERY: usize = 50;
 const NEW_IMAGES: usize = 12;
 
 #[test]
