@@ -18,7 +18,7 @@ import onnx
 import onnxruntime as ort
 
 bin_dir, model_dir, onnx_path = sys.argv[1:4]
-rounds = int(sys.argv[4]) if len(sys.argv) > 4 else 3
+rounds = int(sys.argv[4]) if len(sys.argv) > 4 and sys.argv[4] else 3
 ours_bin = f"{bin_dir}/examples/encoder_throughput"
 
 

@@ -27,7 +27,7 @@ pub enum ServiceError {
         name: String,
         dir: PathBuf,
         #[source]
-        source: EngineError,
+        source: Box<EngineError>,
     },
     #[error("collection name `{0}` is used twice")]
     DuplicateCollection(String),

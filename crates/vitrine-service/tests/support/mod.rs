@@ -48,9 +48,9 @@ pub fn picture(label: usize, seed: u32, size: u32) -> RgbImage {
     RgbImage::from_fn(size, size, |x, y| {
         let (cx, cy) = (x as i64 - size as i64 / 2, y as i64 - size as i64 / 2);
         let on = match label % 3 {
-            0 => ((x + shift) / period) % 2 == 0,
-            1 => ((((cx * cx + cy * cy) as f64).sqrt() as u32 + shift) / period) % 2 == 0,
-            _ => (((x + shift) / period) + (y / period)) % 2 == 0,
+            0 => ((x + shift) / period) & 1 == 0,
+            1 => ((((cx * cx + cy * cy) as f64).sqrt() as u32 + shift) / period) & 1 == 0,
+            _ => (((x + shift) / period) + (y / period)) & 1 == 0,
         };
         let shade = (seed * 13 % 60) as u8;
         if on {
