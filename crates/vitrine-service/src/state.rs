@@ -95,7 +95,7 @@ impl AppState {
                 ServiceError::OpenCollection {
                     name: name.clone(),
                     dir,
-                    source,
+                    source: Box::new(source),
                 }
             })?;
             collections.insert(name, Arc::new(collection));

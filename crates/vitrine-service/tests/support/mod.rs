@@ -132,7 +132,7 @@ impl Fixture {
             index_roots(
                 &mut store,
                 &encoder,
-                &[root.clone()],
+                std::slice::from_ref(&root),
                 &index_options(),
                 &NoProgress,
             )?;

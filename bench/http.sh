@@ -1,0 +1,78 @@
+#!/usr/bin/env bash
+# HTTP service throughput and latency with wrk (Debian package `wrk`):
+# neighbours of an indexed image (GET) and search by uploaded image (POST of
+# a JPEG, one forward pass each) at 1, 8 and 32 connections, on the demo
+# collection. Prints requests/s and p50/p99 latency. Not a test.
+# BENCH_SECONDS sets each run's length (default 10).
+set -euo pipefail
+cd "$(dirname "$0")/.."
+seconds="${BENCH_SECONDS:-10}"
+if ! command -v wrk >/dev/null; then
+  if [ "$(id -u)" = 0 ]; then
+    apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq wrk >/dev/null
+  else
+    echo "wrk is needed (apt-get install wrk)" >&2
+    exit 1
+  fi
+fi
+cargo build -q --release -p vitrine-cli
+vitrine=$(pwd)/target/release/vitrine
+work=$(mktemp -d)
+server_pid=
+cleanup() {
+  if [ -n "$server_pid" ]; then kill "$server_pid" 2>/dev/null || true; wait "$server_pid" 2>/dev/null || true; fi
+  rm -rf "$work"
+}
+trap cleanup EXIT
+
+"$vitrine" --store "$work/store" index demo-images >/dev/null 2>&1
+port=$(( 20000 + RANDOM % 20000 ))
+"$vitrine" --store "$work/store" serve --port "$port" >"$work/serve.log" 2>&1 &
+server_pid=$!
+base="http://127.0.0.1:$port"
+for _ in $(seq 100); do
+  curl -sf "$base/healthz" >/dev/null && break
+  sleep 0.2
+done
+collection=$(curl -sf "$base/api/v1/collections" | sed -E 's/.*"name":"([^"]+)".*/\1/')
+id=$(curl -sf "$base/api/v1/collections/$collection/images?per_page=1" | sed -E 's/.*"items":\[\{"id":([0-9]+).*/\1/')
+query=$(find demo-images -name '*.jpg' | sort | head -1)
+images=$(curl -sf "$base/api/v1/collections/$collection/status" | sed -E 's/.*"images":([0-9]+).*/\1/')
+
+cat >"$work/upload.lua" <<LUA
+local f = assert(io.open("$query", "rb"))
+wrk.method = "POST"
+wrk.body = f:read("*a")
+f:close()
+wrk.headers["Content-Type"] = "image/jpeg"
+LUA
+
+# Latency lines of `wrk --latency` look like "     50%    1.23ms".
+to_ms() {
+  awk -v v="$1" 'BEGIN {
+    n = v + 0; u = v; sub(/^[0-9.]+/, "", u);
+    if (u == "us") n /= 1000; else if (u == "s") n *= 1000; else if (u == "m") n *= 60000;
+    printf "%.2f", n }'
+}
+
+echo "$images images, $(nproc) cores; each run ${seconds} s"
+echo
+echo "| request | connections | requests/s | p50 ms | p99 ms | errors |"
+echo "|---|---:|---:|---:|---:|---:|"
+for kind in neighbours upload; do
+  for connections in 1 8 32; do
+    threads=$(( connections < 2 ? 1 : 2 ))
+    if [ "$kind" = neighbours ]; then
+      out=$(wrk -t"$threads" -c"$connections" -d"${seconds}s" --latency \
+        "$base/api/v1/collections/$collection/images/$id/neighbours?k=10")
+    else
+      out=$(wrk -t"$threads" -c"$connections" -d"${seconds}s" --latency --timeout 30s \
+        -s "$work/upload.lua" "$base/api/v1/collections/$collection/search?k=10")
+    fi
+    rps=$(echo "$out" | awk '/Requests\/sec/ {print $2}')
+    p50=$(to_ms "$(echo "$out" | awk '$1 == "50%" {print $2}')")
+    p99=$(to_ms "$(echo "$out" | awk '$1 == "99%" {print $2}')")
+    errors=$(echo "$out" | awk '/Non-2xx|Socket errors/ {s = s $0 "; "} END {print (s == "" ? "0" : s)}')
+    echo "| $kind | $connections | $rps | $p50 | $p99 | $errors |"
+  done
+done
