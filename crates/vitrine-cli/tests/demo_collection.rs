@@ -68,6 +68,8 @@ fn finds_exactly_the_planted_cases() {
         .unwrap();
     assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
 
+    ann_recall_on_real_embeddings(&store);
+
     // Broken files: each recorded with a reason, nothing else failed.
     let status = run(&store, &["status", "--errors"]);
     let failed: BTreeSet<String> = status["error_list"]
@@ -168,4 +170,30 @@ fn finds_exactly_the_planted_cases() {
     }
     println!("{agreed} of {} unlabelled images got a (correct) suggestion", truth["unlabelled"].as_array().unwrap().len());
     assert!(agreed * 2 >= truth["unlabelled"].as_array().unwrap().len());
+}
+
+/// recall@10 of the persisted HNSW index against exact brute-force top-10 on
+/// the embeddings of a real image set (recall@k as in the approximate
+/// nearest-neighbour benchmark literature; HNSW: Malkov & Yashunin, 2018).
+fn ann_recall_on_real_embeddings(store_dir: &Path) {
+    let store = vitrine_store::Store::open(store_dir).unwrap();
+    assert!(store.index_was_loaded(), "the persisted graph should load, not rebuild");
+    let (ids, vectors) = store.all_embeddings().unwrap();
+    let dim = vectors.len() / ids.len();
+    let k = 10;
+    let mut hits = 0;
+    for query in vectors.chunks_exact(dim) {
+        let mut exact: Vec<(f32, u64)> = vectors
+            .chunks_exact(dim)
+            .zip(&ids)
+            .map(|(v, &id)| (v.iter().zip(query).map(|(a, b)| a * b).sum::<f32>(), id))
+            .collect();
+        exact.sort_by(|a, b| b.0.total_cmp(&a.0).then(a.1.cmp(&b.1)));
+        let truth: BTreeSet<u64> = exact.iter().take(k).map(|&(_, id)| id).collect();
+        let found = store.search(query, k, None).unwrap();
+        hits += found.iter().filter(|(id, _)| truth.contains(id)).count();
+    }
+    let recall = hits as f64 / (k * ids.len()) as f64;
+    println!("recall@10 on {} real embeddings: {recall:.4}", ids.len());
+    assert!(recall >= 0.98, "recall@10 {recall}");
 }
