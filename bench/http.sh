@@ -3,10 +3,14 @@
 # neighbours of an indexed image (GET) and search by uploaded image (POST of
 # a JPEG, one forward pass each) at 1, 8 and 32 connections, on the demo
 # collection. Prints requests/s and p50/p99 latency. Not a test.
-# BENCH_SECONDS sets each run's length (default 10).
+# BENCH_SECONDS sets each neighbour run's length (default 10) and
+# BENCH_UPLOAD_SECONDS each upload run's (default 40: at 32 connections a
+# round of forward passes takes longer than 10 s on a small machine, and wrk
+# counts only requests that finish within the run).
 set -euo pipefail
 cd "$(dirname "$0")/.."
 seconds="${BENCH_SECONDS:-10}"
+upload_seconds="${BENCH_UPLOAD_SECONDS:-40}"
 if ! command -v wrk >/dev/null; then
   if [ "$(id -u)" = 0 ]; then
     apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq wrk >/dev/null
@@ -55,7 +59,7 @@ to_ms() {
     printf "%.2f", n }'
 }
 
-echo "$images images, $(nproc) cores; each run ${seconds} s"
+echo "$images images, $(nproc) cores; neighbour runs ${seconds} s, upload runs ${upload_seconds} s"
 echo
 echo "| request | connections | requests/s | p50 ms | p99 ms | errors |"
 echo "|---|---:|---:|---:|---:|---:|"
@@ -66,7 +70,7 @@ for kind in neighbours upload; do
       out=$(wrk -t"$threads" -c"$connections" -d"${seconds}s" --latency \
         "$base/api/v1/collections/$collection/images/$id/neighbours?k=10")
     else
-      out=$(wrk -t"$threads" -c"$connections" -d"${seconds}s" --latency --timeout 30s \
+      out=$(wrk -t"$threads" -c"$connections" -d"${upload_seconds}s" --latency --timeout 30s \
         -s "$work/upload.lua" "$base/api/v1/collections/$collection/search?k=10")
     fi
     rps=$(echo "$out" | awk '/Requests\/sec/ {print $2}')

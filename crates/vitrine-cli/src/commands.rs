@@ -12,7 +12,8 @@ use vitrine_engine::calibrate::{calibrate, CalibrationOptions, CalibrationReport
 use vitrine_engine::catalog::Catalog;
 use vitrine_engine::clusters::{cluster_collection, ClusterOptions, ClusterReport};
 use vitrine_engine::duplicates::{
-    find_duplicate_groups, find_leaks, DuplicateGroup, DuplicateOptions, LeakOptions, LeakReport,
+    find_duplicates, find_leaks_verified, DuplicateGroup, DuplicateOptions, DuplicateReport,
+    LeakOptions, LeakReport,
 };
 use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions};
 use vitrine_engine::labels::{
@@ -20,6 +21,7 @@ use vitrine_engine::labels::{
 };
 use vitrine_engine::neighbours::{nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter};
 use vitrine_engine::splits::SplitRule;
+use vitrine_engine::verify::{PairVerifier, VerifyOptions};
 use vitrine_engine::walk::WalkOptions;
 use vitrine_imaging::PreprocessSpec;
 use vitrine_imaging::{decode_path, preprocess, DecodeOptions};
@@ -279,6 +281,10 @@ pub struct ThresholdArgs {
     /// Cosine similarity at or above which two images are near-duplicates.
     #[arg(long, value_name = "COSINE")]
     threshold: Option<f32>,
+    /// Judge near pairs on the threshold alone, without re-reading both
+    /// images for the finer check (faster; less precise).
+    #[arg(long)]
+    no_verify: bool,
 }
 
 struct Session {
@@ -334,8 +340,31 @@ impl Session {
         Ok(DuplicateOptions {
             near_duplicate_threshold,
             neighbours_per_image: self.settings.queries.neighbours_per_image,
+            verify: !threshold.no_verify,
             ..DuplicateOptions::default()
         })
+    }
+
+    /// The encoder for the finer near-duplicate check, when it is wanted and
+    /// the collection's model is at hand; otherwise near pairs are judged on
+    /// the threshold alone and the report says so.
+    fn verification_encoder(&self, store: &Store, options: &DuplicateOptions) -> Option<Encoder> {
+        if !options.verify {
+            return None;
+        }
+        match self.encoder() {
+            Ok(encoder) if fingerprint_of(&encoder) == *store.fingerprint() => Some(encoder),
+            Ok(_) => {
+                eprintln!(
+                    "note: the loaded model is not the collection's; near pairs are not verified"
+                );
+                None
+            }
+            Err(err) => {
+                eprintln!("note: {err:#}; near pairs are not verified");
+                None
+            }
+        }
     }
 }
 
@@ -363,9 +392,13 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
         Command::Duplicates { threshold, output } => {
             let store = ctx.open_store()?;
             let catalog = Catalog::load(&store)?;
-            let groups =
-                find_duplicate_groups(&store, &catalog, &ctx.duplicate_options(&threshold)?)?;
-            emit(&DuplicateReport(groups), &output)?;
+            let options = ctx.duplicate_options(&threshold)?;
+            let encoder = ctx.verification_encoder(&store, &options);
+            let verifier = encoder
+                .as_ref()
+                .map(|e| PairVerifier::new(e, VerifyOptions::default()));
+            let report = find_duplicates(&store, &catalog, &options, verifier.as_ref())?;
+            emit(&DuplicateTable(report), &output)?;
         }
         Command::Leaks {
             splits,
@@ -381,7 +414,12 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
                     .unwrap_or_else(|| ctx.settings.queries.reference_split.clone()),
                 duplicates: ctx.duplicate_options(&threshold)?,
             };
-            emit(&LeakTable(find_leaks(&store, &catalog, &options)?), &output)?;
+            let encoder = ctx.verification_encoder(&store, &options.duplicates);
+            let verifier = encoder
+                .as_ref()
+                .map(|e| PairVerifier::new(e, VerifyOptions::default()));
+            let report = find_leaks_verified(&store, &catalog, &options, verifier.as_ref())?;
+            emit(&LeakTable(report), &output)?;
         }
         Command::Clusters { k, seed, output } => {
             let store = ctx.open_store()?;
@@ -717,15 +755,15 @@ fn similar(ctx: &Session, args: &SimilarArgs) -> Result<()> {
     emit(&NeighbourTable(neighbours), &args.output)
 }
 
-struct DuplicateReport(Vec<DuplicateGroup>);
+struct DuplicateTable(DuplicateReport);
 
-impl Report for DuplicateReport {
+impl Report for DuplicateTable {
     type Item = DuplicateGroup;
     fn document(&self) -> serde_json::Value {
         serde_json::to_value(&self.0).unwrap_or_default()
     }
     fn items(&self) -> Vec<&DuplicateGroup> {
-        self.0.iter().collect()
+        self.0.groups.iter().collect()
     }
     fn columns(&self) -> Vec<&'static str> {
         vec![
@@ -741,7 +779,7 @@ impl Report for DuplicateReport {
     }
     fn rows(&self) -> Vec<Vec<String>> {
         let mut rows = Vec::new();
-        for (index, group) in self.0.iter().enumerate() {
+        for (index, group) in self.0.groups.iter().enumerate() {
             for member in &group.members {
                 rows.push(vec![
                     (index + 1).to_string(),
@@ -762,14 +800,26 @@ impl Report for DuplicateReport {
         rows
     }
     fn preamble(&self) -> Vec<String> {
-        let images: usize = self.0.iter().map(|g| g.members.len()).sum();
-        vec![
-            format!(
-                "{} duplicate groups, {images} images; * marks the suggested keeper (nothing is deleted)",
-                self.0.len()
-            ),
-            String::new(),
-        ]
+        let images: usize = self.0.groups.iter().map(|g| g.members.len()).sum();
+        let verification = &self.0.verification;
+        let mut lines = vec![format!(
+            "{} duplicate groups, {images} images; * marks the suggested keeper (nothing is deleted)",
+            self.0.groups.len()
+        )];
+        if verification.applied {
+            lines.push(format!(
+                "near pairs verified: {} candidates, {} confirmed ({} below the threshold), {} rejected above it",
+                verification.candidate_pairs,
+                verification.confirmed,
+                verification.recovered_below_threshold,
+                verification.rejected_above_threshold
+            ));
+        }
+        if let Some(note) = &verification.note {
+            lines.push(format!("note: {note}"));
+        }
+        lines.push(String::new());
+        lines
     }
 }
 
@@ -1150,7 +1200,10 @@ fn serve(ctx: &Session, args: &ServeArgs) -> Result<()> {
             batch_size: ctx.settings.index.batch_size,
             commit_every: ctx.settings.index.commit_every,
         },
-        duplicates: ctx.duplicate_options(&ThresholdArgs { threshold: None })?,
+        duplicates: ctx.duplicate_options(&ThresholdArgs {
+            threshold: None,
+            no_verify: false,
+        })?,
         reference_split: ctx.settings.queries.reference_split.clone(),
     };
     vitrine_service::serve(config)?;

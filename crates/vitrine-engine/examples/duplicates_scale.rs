@@ -11,7 +11,9 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
 use vitrine_engine::catalog::Catalog;
-use vitrine_engine::duplicates::{find_duplicate_groups, find_leaks, DuplicateOptions, LeakOptions};
+use vitrine_engine::duplicates::{
+    find_duplicate_groups, find_leaks, DuplicateOptions, LeakOptions,
+};
 use vitrine_store::{ChangeSet, ImageRecord, ModelFingerprint, Store, Upsert};
 
 const DIM: usize = 384;
@@ -36,12 +38,18 @@ fn synthetic(n: usize, rng: &mut ChaCha8Rng) -> Vec<f32> {
     let mut i = 0;
     while i < n {
         let centre = &centres[rng.random_range(0..centres.len())];
-        let mut v: Vec<f32> = centre.iter().map(|c| c + 0.06 * (rng.random::<f32>() - 0.5)).collect();
+        let mut v: Vec<f32> = centre
+            .iter()
+            .map(|c| c + 0.06 * (rng.random::<f32>() - 0.5))
+            .collect();
         normalise(&mut v);
         vectors.extend_from_slice(&v);
         i += 1;
         if i < n && rng.random::<f32>() < 0.05 {
-            let mut copy: Vec<f32> = v.iter().map(|x| x + 0.012 * (rng.random::<f32>() - 0.5)).collect();
+            let mut copy: Vec<f32> = v
+                .iter()
+                .map(|x| x + 0.012 * (rng.random::<f32>() - 0.5))
+                .collect();
             normalise(&mut copy);
             vectors.extend_from_slice(&copy);
             i += 1;
@@ -62,11 +70,24 @@ fn exact_pairs(vectors: &[f32], n: usize) -> HashSet<(usize, usize)> {
             // SAFETY: scores is rows x n, lhs rows x DIM, rhs n x DIM (read transposed).
             unsafe {
                 gemm::gemm(
-                    rows, n, DIM,
-                    scores.as_mut_ptr(), 1, n as isize, false,
-                    vectors[first * DIM..].as_ptr(), 1, DIM as isize,
-                    vectors.as_ptr(), DIM as isize, 1,
-                    0.0, 1.0, false, false, false,
+                    rows,
+                    n,
+                    DIM,
+                    scores.as_mut_ptr(),
+                    1,
+                    n as isize,
+                    false,
+                    vectors[first * DIM..].as_ptr(),
+                    1,
+                    DIM as isize,
+                    vectors.as_ptr(),
+                    DIM as isize,
+                    1,
+                    0.0,
+                    1.0,
+                    false,
+                    false,
+                    false,
                     gemm::Parallelism::None,
                 );
             }
@@ -88,7 +109,11 @@ fn main() -> anyhow::Result<()> {
         .skip(1)
         .map(|a| a.parse())
         .collect::<Result<_, _>>()?;
-    let sizes = if sizes.is_empty() { vec![10_000, 100_000] } else { sizes };
+    let sizes = if sizes.is_empty() {
+        vec![10_000, 100_000]
+    } else {
+        sizes
+    };
     println!("Duplicates and leakage on synthetic clustered 384-d vectors (threshold {THRESHOLD}, 10 neighbours per image)");
     println!();
     println!("| images | store build s | duplicates s | leaks s | exact all-pairs s | pair recall | groups |");
@@ -115,7 +140,10 @@ fn main() -> anyhow::Result<()> {
                         replaces: None,
                         record: ImageRecord {
                             root: 0,
-                            rel_path: format!("{}/c/{i}.jpg", ["train", "train", "train", "val", "test"][i % 5]),
+                            rel_path: format!(
+                                "{}/c/{i}.jpg",
+                                ["train", "train", "train", "val", "test"][i % 5]
+                            ),
                             byte_size: 1000,
                             modified_unix_ns: 0,
                             content_hash,
@@ -129,7 +157,10 @@ fn main() -> anyhow::Result<()> {
                     }
                 })
                 .collect();
-            store.commit(ChangeSet { upserts, ..ChangeSet::default() })?;
+            store.commit(ChangeSet {
+                upserts,
+                ..ChangeSet::default()
+            })?;
         }
         store.save_index()?;
         let build_s = started.elapsed().as_secs_f64();

@@ -87,7 +87,10 @@ fn without_a_verifier_near_pairs_fall_back_to_the_threshold_and_say_so() -> Resu
     found.sort();
     assert_eq!(found, expected);
     assert!(!report.verification.applied);
-    assert!(report.verification.note.is_some(), "the fallback must be reported");
+    assert!(
+        report.verification.note.is_some(),
+        "the fallback must be reported"
+    );
     for member in report.groups.iter().flat_map(|g| &g.members) {
         assert_eq!(member.verification, Some(Verification::ThresholdOnly));
     }

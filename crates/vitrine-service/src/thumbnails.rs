@@ -17,8 +17,8 @@ use crate::error::ApiError;
 /// JPEG quality of thumbnails (a common web default, from memory).
 const JPEG_QUALITY: u8 = 85;
 
-/// Identifies a thumbnail: collection, image, generation-independent (an
-/// image id never changes its content), and size.
+/// Identifies a thumbnail: collection, image id and size. Re-indexing a
+/// changed file gives it a new id, so entries never go stale by generation.
 type Key = (String, ImageId, u32);
 
 pub struct Thumbnails {

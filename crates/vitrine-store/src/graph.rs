@@ -48,7 +48,8 @@ impl Distance<f32> for CosineDistance {
 pub fn dot(a: &[f32], b: &[f32]) -> f32 {
     #[cfg(target_arch = "x86_64")]
     {
-        if std::arch::is_x86_feature_detected!("avx2") && std::arch::is_x86_feature_detected!("fma") {
+        if std::arch::is_x86_feature_detected!("avx2") && std::arch::is_x86_feature_detected!("fma")
+        {
             // SAFETY: the features the function is compiled for were just detected.
             return unsafe { dot_avx2_fma(a, b) };
         }
@@ -95,7 +96,11 @@ unsafe fn dot_avx2_fma(a: &[f32], b: &[f32]) -> f32 {
         i += 32;
     }
     while i + 8 <= n {
-        acc[0] = _mm256_fmadd_ps(_mm256_loadu_ps(pa.add(i)), _mm256_loadu_ps(pb.add(i)), acc[0]);
+        acc[0] = _mm256_fmadd_ps(
+            _mm256_loadu_ps(pa.add(i)),
+            _mm256_loadu_ps(pb.add(i)),
+            acc[0],
+        );
         i += 8;
     }
     let sum = _mm256_add_ps(_mm256_add_ps(acc[0], acc[1]), _mm256_add_ps(acc[2], acc[3]));
@@ -118,9 +123,16 @@ mod dot_tests {
         for n in [0, 1, 7, 8, 31, 32, 33, 384, 385] {
             let a: Vec<f32> = (0..n).map(|i| ((i * 37 % 11) as f32 - 5.0) / 7.0).collect();
             let b: Vec<f32> = (0..n).map(|i| ((i * 13 % 17) as f32 - 8.0) / 9.0).collect();
-            let exact: f64 = a.iter().zip(&b).map(|(x, y)| f64::from(*x) * f64::from(*y)).sum();
+            let exact: f64 = a
+                .iter()
+                .zip(&b)
+                .map(|(x, y)| f64::from(*x) * f64::from(*y))
+                .sum();
             assert!((f64::from(dot(&a, &b)) - exact).abs() < 1e-4, "n = {n}");
-            assert!((f64::from(dot_portable(&a, &b)) - exact).abs() < 1e-4, "n = {n}");
+            assert!(
+                (f64::from(dot_portable(&a, &b)) - exact).abs() < 1e-4,
+                "n = {n}"
+            );
         }
     }
 }
