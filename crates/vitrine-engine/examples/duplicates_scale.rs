@@ -131,6 +131,7 @@ fn main() -> anyhow::Result<()> {
         };
         let started = Instant::now();
         let mut store = Store::create_or_open(dir.path(), &fingerprint)?;
+        let root = store.add_root(dir.path())?;
         for chunk_start in (0..n).step_by(10_000) {
             let upserts = (chunk_start..(chunk_start + 10_000).min(n))
                 .map(|i| {
@@ -139,7 +140,7 @@ fn main() -> anyhow::Result<()> {
                     Upsert {
                         replaces: None,
                         record: ImageRecord {
-                            root: 0,
+                            root,
                             rel_path: format!(
                                 "{}/c/{i}.jpg",
                                 ["train", "train", "train", "val", "test"][i % 5]
