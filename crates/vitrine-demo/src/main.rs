@@ -6,6 +6,7 @@
 mod canvas;
 mod collection;
 mod derive;
+mod portable;
 mod products;
 mod scene;
 

@@ -12,6 +12,7 @@ use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 
 use crate::canvas::{add, fractal_noise, hsv, mix, scale, smoothstep, value_noise, Canvas, Rgb};
+use crate::portable::PortableMath;
 use crate::scene::{finish, paint_backdrop, paint_contact_shadow, Light};
 
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Serialize)]
@@ -256,7 +257,7 @@ impl Glaze {
                 frequency,
             } => {
                 let boundary = level
-                    + amplitude * (around * frequency + self.seed as f32 * 1e-3).sin().abs()
+                    + amplitude * (around * frequency + self.seed as f32 * 1e-3).sin_portable().abs()
                     + amplitude * (variation - 0.5);
                 colour = mix(
                     colour,
@@ -284,7 +285,7 @@ impl Glaze {
                 amplitude,
                 thickness,
             } => {
-                let centre = level + amplitude * (around * frequency * PI).sin();
+                let centre = level + amplitude * (around * frequency * PI).sin_portable();
                 if (t - centre).abs() < thickness {
                     colour = accent;
                 }
@@ -366,7 +367,7 @@ impl Body<'_> {
             let alpha = (radius - dx.abs() + 0.5).clamp(0.0, 1.0)
                 * ((1.0 - t) * self.height + 0.5).clamp(0.0, 1.0);
             let u = (dx / radius).clamp(-1.0, 1.0);
-            let around = u.asin() / FRAC_PI_2;
+            let around = u.asin_portable() / FRAC_PI_2;
             // A radius growing downwards means the surface faces up, towards the key light.
             let slope = ((self.radius)((t + 0.01).min(1.0)) - (self.radius)((t - 0.01).max(0.0)))
                 / (0.02 * self.height);
@@ -489,7 +490,7 @@ fn paint_bowl(canvas: &mut Canvas, rng: &mut ChaCha8Rng, stage: &Stage) {
     let centre_x = stage.centre_x(rng, rim_radius);
     let foot_y = stage.foot_y(rng);
     let light = stage.light;
-    let profile = move |t: f32| rim_radius * (1.0 - (1.0 - foot) * t.powf(curve));
+    let profile = move |t: f32| rim_radius * (1.0 - (1.0 - foot) * t.powf_portable(curve));
     let surface = |around: f32, t: f32| glaze.colour(around, t);
     let inside = |ex: f32, ey: f32| {
         let distance = (ex * ex + (ey - 0.25) * (ey - 0.25)).sqrt();
@@ -533,8 +534,8 @@ fn paint_vase(canvas: &mut Canvas, rng: &mut ChaCha8Rng, stage: &Stage) {
     let spread = rng.random_range(0.2..0.35);
     let flare = rng.random_range(0.05..0.3);
     let profile = move |t: f32| {
-        let bulge = (-((t - belly) / spread).powi(2)).exp();
-        let lip = flare * (-(t / 0.05).powi(2)).exp();
+        let bulge = (-((t - belly) / spread).powi(2)).exp_portable();
+        let lip = flare * (-(t / 0.05).powi(2)).exp_portable();
         belly_radius * (neck + (1.0 - neck) * bulge + lip) * (1.0 - 0.12 * smoothstep(0.92, 1.0, t))
     };
     let centre_x = stage.centre_x(rng, belly_radius);
@@ -604,7 +605,7 @@ impl Weave {
         if t < self.braid_rim {
             // A braided rim: diagonal plaits.
             let plait = frac((around + 1.0) * self.stakes * 1.5 + t / self.braid_rim);
-            return scale(self.strand, 0.6 + 0.45 * (plait * PI).sin() + wobble);
+            return scale(self.strand, 0.6 + 0.45 * (plait * PI).sin_portable() + wobble);
         }
         let column = (around + 1.0) * 0.5 * self.stakes;
         let row = t * self.rows;
@@ -621,7 +622,7 @@ impl Weave {
             (self.stake, frac(column))
         };
         // Rounded strands: brightest along their middle, dark gaps between them.
-        let rounding = 0.55 + 0.45 * (across * PI).sin();
+        let rounding = 0.55 + 0.45 * (across * PI).sin_portable();
         scale(colour, rounding + wobble)
     }
 }
@@ -640,7 +641,7 @@ fn paint_basket(canvas: &mut Canvas, rng: &mut ChaCha8Rng, stage: &Stage) {
         .max(height + handle_rise + stage.height * 0.05);
     let foot_y = foot_y.min(stage.height * 0.97);
     let light = stage.light;
-    let profile = move |t: f32| rim_radius * (1.0 - taper * t + 0.05 * (PI * t).sin());
+    let profile = move |t: f32| rim_radius * (1.0 - taper * t + 0.05 * (PI * t).sin_portable());
     let surface = |around: f32, t: f32| weave.colour(around, t);
     let inside = |ex: f32, ey: f32| {
         let shade = 0.3 + 0.25 * (-ex * light.x).max(0.0) + 0.2 * (-ey).max(0.0);
@@ -681,9 +682,9 @@ fn paint_basket(canvas: &mut Canvas, rng: &mut ChaCha8Rng, stage: &Stage) {
             if !(0.0..=1.0).contains(&across) {
                 return None;
             }
-            let angle = ny.atan2(nx);
+            let angle = ny.atan2_portable(nx);
             let twist = frac(angle * 9.0 + across * 1.5);
-            let colour = scale(weave.strand, 0.55 + 0.45 * (twist * PI).sin());
+            let colour = scale(weave.strand, 0.55 + 0.45 * (twist * PI).sin_portable());
             Some((scale(colour, light.shade(nx.clamp(-1.0, 1.0) * 0.5)), 1.0))
         },
     );
@@ -824,9 +825,9 @@ impl Band {
         }
         let perpendicular = -px * self.direction.1 + py * self.direction.0;
         let wave = self.frequency * along + self.phase;
-        let slope = self.amplitude * self.frequency * wave.cos();
+        let slope = self.amplitude * self.frequency * wave.cos_portable();
         let half_thickness = self.half_width * (1.0 + slope * slope).sqrt();
-        let across = (perpendicular - self.amplitude * wave.sin()) / half_thickness;
+        let across = (perpendicular - self.amplitude * wave.sin_portable()) / half_thickness;
         (across.abs() <= 1.0).then_some(BandPoint {
             along,
             across,
@@ -879,15 +880,15 @@ impl Cloth {
                 if tassel > 0.5 {
                     return None;
                 }
-                return Some((scale(colour, 0.7 + 0.5 * (tassel * TAU).sin()), 1.0));
+                return Some((scale(colour, 0.7 + 0.5 * (tassel * TAU).sin_portable()), 1.0));
             }
             // Folds turn the cloth towards or away from the light; knit ribs give fine texture.
             let tilt_to_light =
                 (point.slope / (1.0 + point.slope * point.slope).sqrt()) * light.x.signum();
-            let folds = 0.1 * (TAU * point.along / self.fold_length + 2.0 * point.across).sin();
+            let folds = 0.1 * (TAU * point.along / self.fold_length + 2.0 * point.across).sin_portable();
             let ribs = 0.07
-                * (TAU * point.along / self.knit_pitch).sin()
-                * (point.across * band.half_width * 1.3).sin().abs();
+                * (TAU * point.along / self.knit_pitch).sin_portable()
+                * (point.across * band.half_width * 1.3).sin_portable().abs();
             let edge = 1.0 - 0.25 * smoothstep(0.8, 1.0, point.across.abs());
             let shade = (0.85 + 0.2 * tilt_to_light + folds + ribs) * edge;
             Some((scale(colour, shade), 1.0))
@@ -903,7 +904,7 @@ fn paint_scarf(canvas: &mut Canvas, rng: &mut ChaCha8Rng, stage: &Stage) {
     if rng.random_bool(0.6) {
         // Lying on the table, seen at a grazing angle.
         let angle: f32 = rng.random_range(-0.45..0.45);
-        let (cos, sin) = (angle.cos(), angle.sin().abs());
+        let (cos, sin) = (angle.cos_portable(), angle.sin_portable().abs());
         let centre_x = stage.width * rng.random_range(0.42..0.58);
         let wanted_y = stage.horizon + (stage.height - stage.horizon) * rng.random_range(0.4..0.6);
         let half_width = half_width * 1.15;
@@ -918,7 +919,7 @@ fn paint_scarf(canvas: &mut Canvas, rng: &mut ChaCha8Rng, stage: &Stage) {
         let reach_down = squash * ((half_length + fringe) * sin + sway * cos);
         let band = Band {
             centre: (centre_x, wanted_y.min(stage.height * 0.97 - reach_down)),
-            direction: (cos, angle.sin()),
+            direction: (cos, angle.sin_portable()),
             half_length,
             half_width,
             amplitude,
@@ -996,7 +997,7 @@ struct Leaf {
 impl Leaf {
     fn paint(&self, canvas: &mut Canvas, light: Light) {
         let reach = self.length + self.width;
-        let (dir_x, dir_y) = (self.angle.sin(), -self.angle.cos());
+        let (dir_x, dir_y) = (self.angle.sin_portable(), -self.angle.cos_portable());
         canvas.paint(
             (
                 self.base.0 - reach,
@@ -1013,7 +1014,7 @@ impl Leaf {
                 let fraction = along / self.length;
                 let across =
                     (px * -dir_y + py * dir_x) - self.bend * self.length * fraction * fraction;
-                let half_width = 0.5 * self.width * (PI * fraction).sin().powf(0.7);
+                let half_width = 0.5 * self.width * (PI * fraction).sin_portable().powf_portable(0.7);
                 if across.abs() > half_width + 0.5 {
                     return None;
                 }

@@ -4,6 +4,7 @@ use rand::Rng;
 use rand_chacha::ChaCha8Rng;
 
 use crate::canvas::{add, fractal_noise, hsv, mix, scale, smoothstep, value_noise, Canvas, Rgb};
+use crate::portable::PortableMath;
 
 /// Direction towards the key light: `x` < 0 means the light is on the left.
 #[derive(Clone, Copy)]
@@ -32,7 +33,7 @@ impl Light {
         let (hx, hz) = (self.x, self.z + 1.0);
         let norm = (hx * hx + hz * hz).sqrt();
         let nz = (1.0 - nx * nx).max(0.0).sqrt();
-        ((nx * hx + nz * hz) / norm).max(0.0).powf(shininess)
+        ((nx * hx + nz * hz) / norm).max(0.0).powf_portable(shininess)
     }
 }
 
@@ -116,11 +117,11 @@ pub fn paint_backdrop(canvas: &mut Canvas, rng: &mut ChaCha8Rng, light: Light) -
                 // Grain lines run left to right and get denser towards the back.
                 let along = (y - horizon).max(0.0) / (0.25 + depth);
                 let warp = 9.0 * fractal_noise(x / 90.0, along / 40.0, noise_seed ^ 0x55);
-                let grain = (along * frequency + warp).sin() * 0.5 + 0.5;
-                mix(*dark, *light, grain.powf(0.6))
+                let grain = (along * frequency + warp).sin_portable() * 0.5 + 0.5;
+                mix(*dark, *light, grain.powf_portable(0.6))
             }
             Surface::Linen { colour, weave } => {
-                let threads = (x * weave).sin() * (y * weave * 1.1).sin();
+                let threads = (x * weave).sin_portable() * (y * weave * 1.1).sin_portable();
                 add(*colour, 0.035 * threads + 0.05 * (blotch + 0.3))
             }
             Surface::Concrete { colour } => {
@@ -134,7 +135,7 @@ pub fn paint_backdrop(canvas: &mut Canvas, rng: &mut ChaCha8Rng, light: Light) -
         let on_table = smoothstep(-edge_softness, edge_softness, y - horizon);
         let base = mix(wall, table, on_table);
         let (dx, dy) = (x - spot.0, y - spot.1);
-        let glow = 0.8 + 0.32 * (-(dx * dx + dy * dy) / (2.0 * spot_radius * spot_radius)).exp();
+        let glow = 0.8 + 0.32 * (-(dx * dx + dy * dy) / (2.0 * spot_radius * spot_radius)).exp_portable();
         Some((scale(base, glow), 1.0))
     });
     horizon
@@ -156,7 +157,7 @@ pub fn paint_contact_shadow(
     );
     canvas.paint(bounds, |x, y, current| {
         let (dx, dy) = ((x - centre_x) / radius_x, (y - centre_y) / radius_y);
-        let falloff = (-(dx * dx + dy * dy) * 1.6).exp();
+        let falloff = (-(dx * dx + dy * dy) * 1.6).exp_portable();
         Some((scale(current, 1.0 - 0.5 * falloff), 1.0))
     });
 }
