@@ -11,6 +11,10 @@ use anyhow::{Context, Result};
 use candle_core::{Device, Tensor};
 use vitrine_model::encoder::Encoder;
 
+// The allocator the `vitrine` binary uses, so the figures are the binary's.
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 fn arg(args: &[String], name: &str) -> Option<String> {
     args.iter()
         .position(|a| a == name)

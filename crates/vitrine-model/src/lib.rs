@@ -10,6 +10,7 @@ pub mod families;
 pub mod fetch;
 pub mod import;
 pub mod interpolate;
+mod kernels;
 pub mod layout;
 pub mod model_dir;
 pub mod onnx;

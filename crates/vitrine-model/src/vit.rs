@@ -13,6 +13,7 @@ use candle_nn::{Conv2d, Conv2dConfig, LayerNorm, VarBuilder};
 
 use crate::config::{Activation, FinalNorm, Pooling, VitConfig};
 use crate::interpolate::bicubic_resize_grid;
+use crate::kernels;
 
 /// What one forward pass yields.
 pub struct VitOutput {
@@ -49,6 +50,15 @@ impl Dense {
         Self::from_out_in(weight, bias)
     }
 
+    /// Multiplies every output by `scale` (`[out]`) once, at load time, so the
+    /// forward pass needs no separate scaling pass: `(xW + b)·s = x(W·s) + b·s`.
+    fn scale_outputs(self, scale: &Tensor) -> Result<Self> {
+        Ok(Self {
+            weight_in_out: self.weight_in_out.broadcast_mul(scale)?,
+            bias: self.bias.map(|b| b.mul(scale)).transpose()?,
+        })
+    }
+
     /// `x`: `[rows, in]` -> `[rows, out]`.
     fn forward_2d(&self, x: &Tensor) -> Result<Tensor> {
         let y = x.matmul(&self.weight_in_out)?;
@@ -75,7 +85,8 @@ struct SelfAttention {
 }
 
 impl SelfAttention {
-    fn new(cfg: &VitConfig, vb: VarBuilder) -> Result<Self> {
+    /// `layer_scale` (LayerScale's `[D]` gains) is folded into the output projection.
+    fn new(cfg: &VitConfig, vb: VarBuilder, layer_scale: Option<&Tensor>) -> Result<Self> {
         let d = cfg.hidden_size;
         let mut weights = Vec::with_capacity(3);
         let mut biases = Vec::with_capacity(3);
@@ -87,12 +98,23 @@ impl SelfAttention {
                 Tensor::zeros(d, DType::F32, vb.device())?
             });
         }
-        let qkv = Dense::from_out_in(Tensor::cat(&weights, 0)?, Some(Tensor::cat(&biases, 0)?))?;
+        let head_dim = d / cfg.num_heads;
+        // The attention's 1/sqrt(head_dim) is folded into the query projection.
+        let query_scale = 1.0 / (head_dim as f32).sqrt();
+        let column_scale: Vec<f32> = (0..3 * d)
+            .map(|column| if column < d { query_scale } else { 1.0 })
+            .collect();
+        let qkv = Dense::from_out_in(Tensor::cat(&weights, 0)?, Some(Tensor::cat(&biases, 0)?))?
+            .scale_outputs(&Tensor::from_vec(column_scale, 3 * d, vb.device())?)?;
+        let mut out = Dense::load(&vb.pp("out"), d, d, true)?;
+        if let Some(layer_scale) = layer_scale {
+            out = out.scale_outputs(layer_scale)?;
+        }
         Ok(Self {
             qkv,
-            out: Dense::load(&vb.pp("out"), d, d, true)?,
+            out,
             num_heads: cfg.num_heads,
-            head_dim: d / cfg.num_heads,
+            head_dim,
         })
     }
 
@@ -103,12 +125,11 @@ impl SelfAttention {
         let qkv = qkv
             .reshape((b, t, 3, self.num_heads, self.head_dim))?
             .permute((2, 0, 3, 1, 4))?;
-        let scale = 1.0 / (self.head_dim as f64).sqrt();
-        let q = (qkv.i(0)? * scale)?.contiguous()?;
+        let q = qkv.i(0)?.contiguous()?;
         let k = qkv.i(1)?.contiguous()?;
         let v = qkv.i(2)?.contiguous()?;
         let scores = q.matmul(&k.t()?)?;
-        let weights = candle_nn::ops::softmax_last_dim(&scores)?;
+        let weights = kernels::softmax_last_dim(&scores)?;
         let context = weights.matmul(&v)?.transpose(1, 2)?.reshape((b * t, d))?;
         self.out.forward_2d(&context)?.reshape((b, t, d))
     }
@@ -121,10 +142,15 @@ struct Mlp {
 }
 
 impl Mlp {
-    fn new(cfg: &VitConfig, vb: VarBuilder) -> Result<Self> {
+    /// `layer_scale` is folded into the second layer, as in [`SelfAttention::new`].
+    fn new(cfg: &VitConfig, vb: VarBuilder, layer_scale: Option<&Tensor>) -> Result<Self> {
+        let mut fc2 = Dense::load(&vb.pp("fc2"), cfg.mlp_size, cfg.hidden_size, true)?;
+        if let Some(layer_scale) = layer_scale {
+            fc2 = fc2.scale_outputs(layer_scale)?;
+        }
         Ok(Self {
             fc1: Dense::load(&vb.pp("fc1"), cfg.hidden_size, cfg.mlp_size, true)?,
-            fc2: Dense::load(&vb.pp("fc2"), cfg.mlp_size, cfg.hidden_size, true)?,
+            fc2,
             activation: cfg.activation,
         })
     }
@@ -133,20 +159,20 @@ impl Mlp {
         let (b, t, d) = x.dims3()?;
         let h = self.fc1.forward_2d(&x.reshape((b * t, d))?)?;
         let h = match self.activation {
-            Activation::Gelu => gelu_exact(&h)?,
+            Activation::Gelu => kernels::gelu_erf(&h)?,
             Activation::QuickGelu => (&h * candle_nn::ops::sigmoid(&(&h * 1.702)?)?)?,
         };
         self.fc2.forward_2d(&h)?.reshape((b, t, d))
     }
 }
 
+/// A pre-norm encoder block; LayerScale, when the model has it, lives inside
+/// the attention's and the MLP's output projections.
 struct Block {
     norm1: LayerNorm,
     attn: SelfAttention,
-    layer_scale1: Option<Tensor>,
     norm2: LayerNorm,
     mlp: Mlp,
-    layer_scale2: Option<Tensor>,
 }
 
 impl Block {
@@ -160,29 +186,15 @@ impl Block {
         };
         Ok(Self {
             norm1: layer_norm(vb.pp("norm1"), d, eps)?,
-            attn: SelfAttention::new(cfg, vb.pp("attn"))?,
-            layer_scale1,
+            attn: SelfAttention::new(cfg, vb.pp("attn"), layer_scale1.as_ref())?,
             norm2: layer_norm(vb.pp("norm2"), d, eps)?,
-            mlp: Mlp::new(cfg, vb.pp("mlp"))?,
-            layer_scale2,
+            mlp: Mlp::new(cfg, vb.pp("mlp"), layer_scale2.as_ref())?,
         })
     }
 
     fn forward(&self, x: &Tensor) -> Result<Tensor> {
-        let scaled = |y: Tensor, scale: &Option<Tensor>| match scale {
-            Some(s) => y.broadcast_mul(s),
-            None => Ok(y),
-        };
-        let attended = scaled(
-            self.attn.forward(&self.norm1.forward(x)?)?,
-            &self.layer_scale1,
-        )?;
-        let x = (x + attended)?;
-        let transformed = scaled(
-            self.mlp.forward(&self.norm2.forward(&x)?)?,
-            &self.layer_scale2,
-        )?;
-        x + transformed
+        let x = (x + self.attn.forward(&self.norm1.forward(x)?)?)?;
+        &x + self.mlp.forward(&self.norm2.forward(&x)?)?
     }
 }
 
@@ -412,35 +424,6 @@ impl VitModel {
             }
         }
     }
-}
-
-/// GELU with erf, x·(1 + erf(x/√2))/2, in f32. candle's `gelu_erf` evaluates
-/// a double-precision erf element by element and took a quarter of the
-/// forward pass; Abramowitz & Stegun's formula 7.1.26 (absolute error of erf
-/// at most 1.5e-7) is accurate far beyond the 1e-4 the reference checks allow.
-fn gelu_exact(x: &Tensor) -> Result<Tensor> {
-    use rayon::prelude::*;
-    const P: f32 = 0.327_591_1;
-    const A: [f32; 5] = [
-        0.254_829_6,
-        -0.284_496_74,
-        1.421_413_7,
-        -1.453_152_1,
-        1.061_405_4,
-    ];
-    let erf = |v: f32| {
-        let z = v.abs();
-        let t = 1.0 / (1.0 + P * z);
-        let poly = t * (A[0] + t * (A[1] + t * (A[2] + t * (A[3] + t * A[4]))));
-        (1.0 - poly * (-z * z).exp()).copysign(v)
-    };
-    let mut values = x.flatten_all()?.to_vec1::<f32>()?;
-    values.par_chunks_mut(4096).for_each(|chunk| {
-        for v in chunk {
-            *v = 0.5 * *v * (1.0 + erf(*v * std::f32::consts::FRAC_1_SQRT_2));
-        }
-    });
-    Tensor::from_vec(values, x.shape(), x.device())
 }
 
 /// Row-wise L2 normalisation of `[B, E]`.
