@@ -1,31 +1,35 @@
-//! HNSW benchmark: the store's graph (hnsw_rs with `CosineDistance`) against hnswlib,
-//! one thread each, same vectors, same M and ef_construction.
+//! HNSW benchmark: the store's graph (built by hnsw_rs, searched in its compact form)
+//! against hnswlib, one thread each, same vectors, same M and ef_construction.
 //!
 //! Run (release):
-//!   VITRINE_PYTHON=/work/pyenv/bin/python \
+//!   VITRINE_PYTHON=.venv/bin/python \
 //!     cargo run --release -p vitrine-store --example hnsw_bench [-- POINTS QUERIES]
 //!
 //! For two synthetic data sets of clustered 384-dimensional unit vectors it prints the
 //! build time, recall@10 and median queries/s over an ef_search sweep for both
-//! libraries, then the cheapest ef_search reaching recall@10 >= 0.95 and >= 0.99.
+//! libraries, then the cheapest ef_search reaching recall@10 >= 0.95 and >= 0.99. For
+//! the first data set it also fills a store with the vectors (commits of 10,000 on
+//! every core, as indexing does), saves it and times opening it, against hnsw_rs'
+//! own reload of the same dump and hnswlib's reload of its saved index.
 
-#[path = "../tests/common/synthetic.rs"]
-mod synthetic;
+#[path = "../tests/common/mod.rs"]
+mod common;
 
 use std::fs::File;
 use std::io::{BufWriter, Write};
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::Instant;
 
 use anyhow::{bail, Context};
-use hnsw_rs::prelude::Hnsw;
-use synthetic::{exact_top_k, recall_at_k, ClusteredSource};
-use vitrine_store::{CosineDistance, HnswParams};
+use common::synthetic::{exact_top_k, recall_at_k, ClusteredSource};
+use hnsw_rs::prelude::HnswIo;
+use vitrine_store::{CosineDistance, Graph, HnswParams, ImageId, Store};
 
 const DIM: usize = 384;
 const K: usize = 10;
 const REPEATS: usize = 5;
+const OPEN_REPEATS: usize = 3;
 const EF_SWEEP: [usize; 12] = [10, 16, 24, 32, 48, 64, 96, 128, 192, 256, 384, 512];
 const TARGETS: [f64; 2] = [0.95, 0.99];
 
@@ -57,6 +61,8 @@ struct SweepPoint {
 struct Run {
     build_s: f64,
     sweep: Vec<SweepPoint>,
+    /// Seconds to load the saved index (hnswlib only).
+    load_s: Option<f64>,
 }
 
 fn main() -> anyhow::Result<()> {
@@ -67,6 +73,7 @@ fn main() -> anyhow::Result<()> {
     let script = Path::new(env!("CARGO_MANIFEST_DIR")).join("examples/hnswlib_reference.py");
     let params = HnswParams::default();
     let work = tempfile::tempdir()?;
+    let one_thread = rayon::ThreadPoolBuilder::new().num_threads(1).build()?;
 
     for (seed, dataset) in (0u64..).step_by(10).zip(&DATASETS) {
         let source = ClusteredSource::new(seed, DIM, dataset.centres, dataset.noise_std);
@@ -78,26 +85,30 @@ fn main() -> anyhow::Result<()> {
         let truth_flat: Vec<i64> = truth.iter().flatten().map(|&r| r as i64).collect();
         write_npy_i64(&work.path().join("truth.npy"), &truth_flat, queries_n, K)?;
 
-        let ours = run_hnsw_rs(&data, &queries, &truth, &params);
+        let ours = one_thread.install(|| run_vitrine(&data, &queries, &truth, &params));
         let reference = run_hnswlib(&python, &script, work.path(), &params)?;
         print_report(dataset, points, queries_n, &params, &ours, &reference);
+        if seed == 0 {
+            let store_dir = work.path().join("store");
+            let open = measure_open(&store_dir, &data)?;
+            print_open_report(points, &open, &reference);
+            std::fs::remove_dir_all(&store_dir)?;
+        }
     }
     Ok(())
 }
 
-fn run_hnsw_rs(data: &[f32], queries: &[f32], truth: &[Vec<usize>], params: &HnswParams) -> Run {
-    let points = data.len() / DIM;
-    let hnsw = Hnsw::<f32, CosineDistance>::new(
-        params.max_nb_connection,
-        points,
-        16,
-        params.ef_construction,
-        CosineDistance,
-    );
+fn run_vitrine(data: &[f32], queries: &[f32], truth: &[Vec<usize>], params: &HnswParams) -> Run {
+    let items: Vec<(ImageId, &[f32])> = data
+        .chunks_exact(DIM)
+        .enumerate()
+        .map(|(id, row)| (id as ImageId, row))
+        .collect();
+    let accept_all = |_: ImageId| true;
     let started = Instant::now();
-    for (id, row) in data.chunks_exact(DIM).enumerate() {
-        hnsw.insert_slice((row, id));
-    }
+    let graph = Graph::build(params, DIM, &items);
+    // The first search copies hnsw_rs' layers into the compact form: part of the build.
+    graph.search(&queries[..DIM], K, &accept_all);
     let build_s = started.elapsed().as_secs_f64();
 
     let sweep = EF_SWEEP
@@ -109,7 +120,10 @@ fn run_hnsw_rs(data: &[f32], queries: &[f32], truth: &[Vec<usize>], params: &Hns
                 let started = Instant::now();
                 found = queries
                     .chunks_exact(DIM)
-                    .map(|q| hnsw.search(q, K, ef).iter().map(|n| n.d_id).collect())
+                    .map(|q| {
+                        let hits = graph.search(q, ef.max(K), &accept_all);
+                        hits.iter().take(K).map(|(id, _)| *id as usize).collect()
+                    })
                     .collect::<Vec<Vec<usize>>>();
                 rates.push(found.len() as f64 / started.elapsed().as_secs_f64());
             }
@@ -120,7 +134,74 @@ fn run_hnsw_rs(data: &[f32], queries: &[f32], truth: &[Vec<usize>], params: &Hns
             }
         })
         .collect();
-    Run { build_s, sweep }
+    Run {
+        build_s,
+        sweep,
+        load_s: None,
+    }
+}
+
+struct OpenTimes {
+    fill_s: f64,
+    save_s: f64,
+    open_s: f64,
+    first_search_s: f64,
+    hnsw_rs_reload_s: f64,
+}
+
+/// Fills a store with `data`, saves it, then times `Store::open` and the first search
+/// after it, and hnsw_rs' own reload of the saved dump (what opening used to run).
+fn measure_open(dir: &Path, data: &[f32]) -> anyhow::Result<OpenTimes> {
+    let started = Instant::now();
+    let (mut store, _) = common::populated_store(dir, data, DIM);
+    let fill_s = started.elapsed().as_secs_f64();
+    let started = Instant::now();
+    store.save_index()?;
+    let save_s = started.elapsed().as_secs_f64();
+    drop(store);
+
+    let mut opens = Vec::with_capacity(OPEN_REPEATS);
+    let mut first_searches = Vec::with_capacity(OPEN_REPEATS);
+    for _ in 0..OPEN_REPEATS {
+        let started = Instant::now();
+        let store = Store::open(dir)?;
+        opens.push(started.elapsed().as_secs_f64());
+        if !store.index_was_loaded() {
+            bail!("the saved graph was rebuilt instead of loaded");
+        }
+        let started = Instant::now();
+        store.search(&data[..DIM], K, None)?;
+        first_searches.push(started.elapsed().as_secs_f64());
+    }
+
+    let (graph_dir, basename) = saved_dump(dir)?;
+    let mut reloads = Vec::with_capacity(OPEN_REPEATS);
+    for _ in 0..OPEN_REPEATS {
+        let started = Instant::now();
+        let io = HnswIo::new(&graph_dir, &basename);
+        let hnsw = io.load_hnsw_with_dist(CosineDistance)?;
+        reloads.push(started.elapsed().as_secs_f64());
+        drop(hnsw);
+    }
+    Ok(OpenTimes {
+        fill_s,
+        save_s,
+        open_s: median(opens),
+        first_search_s: median(first_searches),
+        hnsw_rs_reload_s: median(reloads),
+    })
+}
+
+/// The directory and basename of the one dump in a saved store.
+fn saved_dump(store_dir: &Path) -> anyhow::Result<(PathBuf, String)> {
+    let graph_dir = store_dir.join("hnsw");
+    for entry in std::fs::read_dir(&graph_dir)? {
+        let name = entry?.file_name().to_string_lossy().into_owned();
+        if let Some(basename) = name.strip_suffix(".hnsw.graph") {
+            return Ok((graph_dir, basename.to_string()));
+        }
+    }
+    bail!("no dump in {}", graph_dir.display())
 }
 
 fn run_hnswlib(
@@ -165,6 +246,7 @@ fn run_hnswlib(
     Ok(Run {
         build_s: number(&json, "build_s")?,
         sweep,
+        load_s: Some(number(&json, "load_s")?),
     })
 }
 
@@ -182,14 +264,15 @@ fn print_report(
         dataset.name, params.max_nb_connection, params.ef_construction
     );
     println!(
-        "build: hnsw_rs {:.1} s, hnswlib {:.1} s, ratio hnsw_rs/hnswlib {:.2}",
+        "build: vitrine (hnsw_rs insertion + compact copy) {:.1} s, hnswlib {:.1} s, \
+         ratio vitrine/hnswlib {:.2}",
         ours.build_s,
         reference.build_s,
         ours.build_s / reference.build_s
     );
     println!(
         "{:>6} | {:>14} {:>14} | {:>14} {:>14} | {:>9}",
-        "ef", "hnsw_rs recall", "hnsw_rs q/s", "hnswlib recall", "hnswlib q/s", "q/s ratio"
+        "ef", "vitrine recall", "vitrine q/s", "hnswlib recall", "hnswlib q/s", "q/s ratio"
     );
     for (a, b) in ours.sweep.iter().zip(&reference.sweep) {
         println!(
@@ -211,17 +294,35 @@ fn print_report(
         };
         match (cheapest(ours), cheapest(reference)) {
             (Some((ef_a, qps_a)), Some((ef_b, qps_b))) => println!(
-                "recall@{K} >= {target}: hnsw_rs ef {ef_a} at {qps_a:.0} q/s, hnswlib ef {ef_b} \
+                "recall@{K} >= {target}: vitrine ef {ef_a} at {qps_a:.0} q/s, hnswlib ef {ef_b} \
                  at {qps_b:.0} q/s, ratio {:.2}",
                 qps_a / qps_b
             ),
             (a, b) => println!(
-                "recall@{K} >= {target}: hnsw_rs {}, hnswlib {}",
+                "recall@{K} >= {target}: vitrine {}, hnswlib {}",
                 describe(a),
                 describe(b)
             ),
         }
     }
+}
+
+fn print_open_report(points: usize, open: &OpenTimes, reference: &Run) {
+    println!("\n## Store of {points} images, saved and reopened, median of {OPEN_REPEATS}");
+    println!(
+        "fill (commits of 10,000, all cores): {:.1} s; save: {:.1} s",
+        open.fill_s, open.save_s
+    );
+    println!(
+        "open: vitrine Store::open {:.2} s (then first search {:.1} ms); hnsw_rs reload of \
+         the same dump alone {:.2} s; hnswlib load_index {}",
+        open.open_s,
+        open.first_search_s * 1e3,
+        open.hnsw_rs_reload_s,
+        reference
+            .load_s
+            .map_or_else(|| "n/a".into(), |s| format!("{s:.2} s")),
+    );
 }
 
 fn describe(point: Option<(usize, f64)>) -> String {

@@ -1,25 +1,33 @@
 //! The in-memory HNSW graph and its dump files.
 //!
+//! hnsw_rs builds the graph and writes the dumps; searches run on the compact copy in
+//! `compact.rs`, which `dump.rs` can also read straight from a dump.
+//!
 //! hnsw_rs ties a reloaded `Hnsw<'b, ..>` to the `HnswIo` that loaded it (`'a: 'b`),
 //! because with memory-mapped reloads the vectors live in the loader's mapping. We keep
 //! both in one self-referential cell (self_cell), so a loaded graph and a freshly built
 //! one (owning an unused default `HnswIo`) have the same type and can live in `Store`.
 
-use std::collections::HashSet;
+use std::collections::{HashMap, HashSet};
 use std::fs::File;
 use std::io::Read;
 use std::panic::{catch_unwind, AssertUnwindSafe};
 use std::path::{Path, PathBuf};
+use std::sync::{Arc, PoisonError, RwLock, RwLockReadGuard};
 
 use hnsw_rs::anndists::dist::distances::Distance;
-use hnsw_rs::prelude::{AnnT, Hnsw, HnswIo};
+use hnsw_rs::prelude::{AnnT, Hnsw, HnswIo, Point, PointId};
+use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
+use crate::compact::{self, Links, Vectors};
+use crate::distance::dot;
+use crate::dump;
 use crate::error::StoreError;
 use crate::types::{HnswParams, ImageId};
 
 /// hnsw_rs caps the number of layers at 16.
-const MAX_LAYERS: usize = 16;
+pub(crate) const MAX_LAYERS: usize = 16;
 /// Below this many points, inserting on one thread beats rayon's overhead.
 const PARALLEL_INSERT_MIN: usize = 256;
 
@@ -39,101 +47,6 @@ pub struct CosineDistance;
 impl Distance<f32> for CosineDistance {
     fn eval(&self, a: &[f32], b: &[f32]) -> f32 {
         (1.0 - dot(a, b)).max(0.0)
-    }
-}
-
-/// Dot product of two equally long vectors. Uses AVX2 + FMA when the CPU has
-/// them (checked once at run time, so one binary serves every x86-64 machine);
-/// distance evaluations dominate HNSW build and search time.
-pub fn dot(a: &[f32], b: &[f32]) -> f32 {
-    #[cfg(target_arch = "x86_64")]
-    {
-        if std::arch::is_x86_feature_detected!("avx2") && std::arch::is_x86_feature_detected!("fma")
-        {
-            // SAFETY: the features the function is compiled for were just detected.
-            return unsafe { dot_avx2_fma(a, b) };
-        }
-    }
-    dot_portable(a, b)
-}
-
-/// Eight independent partial sums, which the compiler can map onto SIMD lanes
-/// (a single running sum forces strictly sequential float additions).
-fn dot_portable(a: &[f32], b: &[f32]) -> f32 {
-    const LANES: usize = 8;
-    let a_chunks = a.chunks_exact(LANES);
-    let b_chunks = b.chunks_exact(LANES);
-    let tail: f32 = a_chunks
-        .remainder()
-        .iter()
-        .zip(b_chunks.remainder())
-        .map(|(x, y)| x * y)
-        .sum();
-    let mut sums = [0.0f32; LANES];
-    for (x, y) in a_chunks.zip(b_chunks) {
-        for lane in 0..LANES {
-            sums[lane] += x[lane] * y[lane];
-        }
-    }
-    sums.iter().sum::<f32>() + tail
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2,fma")]
-unsafe fn dot_avx2_fma(a: &[f32], b: &[f32]) -> f32 {
-    use std::arch::x86_64::*;
-    let n = a.len().min(b.len());
-    let (pa, pb) = (a.as_ptr(), b.as_ptr());
-    // Four accumulators hide the FMA latency.
-    let mut acc = [_mm256_setzero_ps(); 4];
-    let mut i = 0;
-    while i + 32 <= n {
-        for (k, sum) in acc.iter_mut().enumerate() {
-            let x = _mm256_loadu_ps(pa.add(i + 8 * k));
-            let y = _mm256_loadu_ps(pb.add(i + 8 * k));
-            *sum = _mm256_fmadd_ps(x, y, *sum);
-        }
-        i += 32;
-    }
-    while i + 8 <= n {
-        acc[0] = _mm256_fmadd_ps(
-            _mm256_loadu_ps(pa.add(i)),
-            _mm256_loadu_ps(pb.add(i)),
-            acc[0],
-        );
-        i += 8;
-    }
-    let sum = _mm256_add_ps(_mm256_add_ps(acc[0], acc[1]), _mm256_add_ps(acc[2], acc[3]));
-    let mut lanes = [0f32; 8];
-    _mm256_storeu_ps(lanes.as_mut_ptr(), sum);
-    let mut total: f32 = lanes.iter().sum();
-    while i < n {
-        total += *pa.add(i) * *pb.add(i);
-        i += 1;
-    }
-    total
-}
-
-#[cfg(test)]
-mod dot_tests {
-    use super::*;
-
-    #[test]
-    fn simd_and_portable_agree() {
-        for n in [0, 1, 7, 8, 31, 32, 33, 384, 385] {
-            let a: Vec<f32> = (0..n).map(|i| ((i * 37 % 11) as f32 - 5.0) / 7.0).collect();
-            let b: Vec<f32> = (0..n).map(|i| ((i * 13 % 17) as f32 - 8.0) / 9.0).collect();
-            let exact: f64 = a
-                .iter()
-                .zip(&b)
-                .map(|(x, y)| f64::from(*x) * f64::from(*y))
-                .sum();
-            assert!((f64::from(dot(&a, &b)) - exact).abs() < 1e-4, "n = {n}");
-            assert!(
-                (f64::from(dot_portable(&a, &b)) - exact).abs() < 1e-4,
-                "n = {n}"
-            );
-        }
     }
 }
 
@@ -207,40 +120,62 @@ pub fn is_dump_file_name(name: &str) -> bool {
     name.starts_with("gen-") && (name.ends_with(".hnsw.graph") || name.ends_with(".hnsw.data"))
 }
 
+/// The dump a graph was loaded from or last written to, while the graph still equals it.
+struct SavedDump {
+    dir: PathBuf,
+    manifest: IndexManifest,
+}
+
+/// The HNSW graph over a store's embeddings. Public so that benchmarks can build and
+/// search it without a store around it.
+///
+/// hnsw_rs builds the graph (`builder`) and writes the dumps; searches run on a
+/// compact copy of its layers (`links`, over `vectors`). Opening a store reads the
+/// dump straight into the compact form; hnsw_rs' own structure is only read from the
+/// dump when the graph must change. After insertions the compact links are dropped and
+/// copied again from hnsw_rs by the next search, so a run of commits pays for one copy.
 pub struct Graph {
-    cell: GraphCell,
-    ids: HashSet<ImageId>,
-    dim: usize,
+    params: HnswParams,
+    /// Node `n`'s vector, image id and removal mark.
+    vectors: Vectors,
+    image_ids: Vec<ImageId>,
+    removed: Vec<bool>,
+    removed_count: usize,
+    node_of: HashMap<ImageId, u32>,
+    /// `None` between an insertion and the next search.
+    links: RwLock<Option<Links>>,
+    builder: Option<GraphCell>,
+    saved: Option<SavedDump>,
 }
 
 impl Graph {
-    pub fn empty(params: &HnswParams, dim: usize, capacity: usize) -> Graph {
-        let cell = GraphCell::new(HnswIo::default(), |_| {
-            Hnsw::new(
-                params.max_nb_connection,
-                capacity.max(1),
-                MAX_LAYERS,
-                params.ef_construction,
-                CosineDistance,
-            )
-        });
+    pub(crate) fn empty(params: &HnswParams, dim: usize) -> Graph {
         Graph {
-            cell,
-            ids: HashSet::new(),
-            dim,
+            params: *params,
+            vectors: Vectors::with_capacity(dim, 0),
+            image_ids: Vec::new(),
+            removed: Vec::new(),
+            removed_count: 0,
+            node_of: HashMap::new(),
+            links: RwLock::new(Some(Links::new(std::iter::empty(), None))),
+            builder: None,
+            saved: None,
         }
     }
 
-    /// Builds a graph from (id, L2-normalised vector) pairs, inserting in parallel.
+    /// Builds a graph from (id, L2-normalised vector) pairs, inserting in parallel on
+    /// rayon's current pool.
     pub fn build(params: &HnswParams, dim: usize, items: &[(ImageId, &[f32])]) -> Graph {
-        let mut graph = Graph::empty(params, dim, items.len());
-        graph.insert(items);
+        let mut graph = Graph::empty(params, dim);
+        graph
+            .insert(items)
+            .expect("a new graph has no dump to load");
         graph
     }
 
     /// Loads the dump described by `manifest` from `dir` after checking each file's
     /// size and checksum. `dim` is the store's embedding dimension.
-    pub fn load(
+    pub(crate) fn load(
         dir: &Path,
         manifest: &IndexManifest,
         params: &HnswParams,
@@ -251,81 +186,84 @@ impl Graph {
         {
             return Err(LoadFailure::ParamsChanged);
         }
-        for file in &manifest.files {
-            let path = dir.join(&file.name);
-            let (len, hash) = match checksum(&path) {
-                Ok(found) => found,
-                Err(error) if error.kind() == std::io::ErrorKind::NotFound => {
-                    return Err(LoadFailure::FileMissing(path))
-                }
-                Err(error) => return Err(LoadFailure::Unreadable(error.to_string())),
-            };
-            if len != file.len || hash != file.blake3 {
-                return Err(LoadFailure::FileAltered(path));
-            }
+        let dump = dump::read(dir, manifest, dim)?;
+        let node_of: HashMap<ImageId, u32> = dump
+            .image_ids
+            .iter()
+            .enumerate()
+            .map(|(node, id)| (*id, node as u32))
+            .collect();
+        if node_of.len() != dump.image_ids.len() {
+            return Err(LoadFailure::Unreadable("dump holds an id twice".into()));
         }
-        // The checksums make a malformed dump unlikely, but hnsw_rs asserts (panics)
-        // instead of returning errors on bad input, so a panic is still caught here.
-        let loaded = catch_unwind(AssertUnwindSafe(|| {
-            GraphCell::try_new(HnswIo::new(dir, &manifest.basename), |io| {
-                io.load_hnsw_with_dist(CosineDistance)
-            })
-        }));
-        let mut cell = match loaded {
-            Ok(Ok(cell)) => cell,
-            Ok(Err(error)) => return Err(LoadFailure::Unreadable(error.to_string())),
-            Err(_) => return Err(LoadFailure::Unreadable("hnsw_rs panicked".into())),
-        };
-        // A reloaded hnsw_rs graph extends candidates when inserting, a new one does
-        // not; keep insertion behaviour the same whichever way the graph was made.
-        cell.with_dependent_mut(|_, hnsw| hnsw.set_extend_candidates(false));
-        let (ids, loaded_dim) = cell.with_dependent(|_, hnsw| {
-            let indexation = hnsw.get_point_indexation();
-            if indexation.get_nb_point() == 0 {
-                return (HashSet::new(), dim);
-            }
-            let ids: HashSet<ImageId> = indexation
-                .into_iter()
-                .map(|point| point.get_origin_id() as ImageId)
-                .collect();
-            (ids, indexation.get_data_dimension())
-        });
-        if loaded_dim != dim {
-            return Err(LoadFailure::Unreadable(format!(
-                "dump holds {loaded_dim}-dimensional vectors, the store {dim}-dimensional"
-            )));
-        }
-        if ids.len() as u64 != manifest.points {
-            return Err(LoadFailure::Unreadable(format!(
-                "dump holds {} points, the manifest records {}",
-                ids.len(),
-                manifest.points
-            )));
-        }
-        Ok(Graph { cell, ids, dim })
+        Ok(Graph {
+            params: *params,
+            removed: vec![false; dump.image_ids.len()],
+            removed_count: 0,
+            vectors: dump.vectors,
+            image_ids: dump.image_ids,
+            node_of,
+            links: RwLock::new(Some(dump.links)),
+            builder: None,
+            saved: Some(SavedDump {
+                dir: dir.to_path_buf(),
+                manifest: manifest.clone(),
+            }),
+        })
     }
 
     pub fn len(&self) -> usize {
-        self.ids.len()
+        self.image_ids.len()
     }
 
-    pub fn contains(&self, id: ImageId) -> bool {
-        self.ids.contains(&id)
+    pub(crate) fn contains(&self, id: ImageId) -> bool {
+        self.node_of.contains_key(&id)
     }
 
-    pub fn ids(&self) -> &HashSet<ImageId> {
-        &self.ids
+    /// Every image id in the graph, removed ones included.
+    pub(crate) fn image_ids(&self) -> &[ImageId] {
+        &self.image_ids
+    }
+
+    /// Keeps `id` out of every later search result (hnsw_rs cannot delete nodes).
+    pub(crate) fn mark_removed(&mut self, id: ImageId) {
+        if let Some(&node) = self.node_of.get(&id) {
+            let mark = &mut self.removed[node as usize];
+            if !*mark {
+                *mark = true;
+                self.removed_count += 1;
+            }
+        }
+    }
+
+    /// Number of nodes marked removed.
+    pub(crate) fn removed_count(&self) -> usize {
+        self.removed_count
+    }
+
+    /// False while the graph equals the dump it was loaded from or last written to.
+    pub(crate) fn has_unsaved_changes(&self) -> bool {
+        self.saved.is_none()
     }
 
     /// Inserts (id, L2-normalised vector) pairs. Ids already in the graph are skipped:
-    /// an id's embedding never changes, so its node is still right.
-    pub fn insert(&mut self, items: &[(ImageId, &[f32])]) {
-        let fresh: Vec<(&[f32], usize)> = items
-            .iter()
-            .filter(|(id, vector)| vector.len() == self.dim && !self.ids.contains(id))
-            .map(|(id, vector)| (*vector, *id as usize))
-            .collect();
-        self.cell.with_dependent(|_, hnsw| {
+    /// an id's embedding never changes, so its node is still right. Fails only when
+    /// hnsw_rs' structure has to be read from the dump and the dump is no longer
+    /// intact; the graph is then unchanged.
+    pub(crate) fn insert(&mut self, items: &[(ImageId, &[f32])]) -> Result<(), LoadFailure> {
+        let dim = self.vectors.dim();
+        let mut fresh: Vec<(&[f32], usize)> = Vec::new();
+        let mut seen = HashSet::new();
+        for (id, vector) in items {
+            if vector.len() == dim && !self.contains(*id) && seen.insert(*id) {
+                fresh.push((*vector, *id as usize));
+            }
+        }
+        if fresh.is_empty() {
+            return Ok(());
+        }
+        let capacity = self.len() + fresh.len();
+        self.builder(capacity)?.with_dependent(|_, hnsw| {
             if fresh.len() >= PARALLEL_INSERT_MIN {
                 hnsw.parallel_insert_slice(&fresh);
             } else {
@@ -334,40 +272,154 @@ impl Graph {
                 }
             }
         });
-        self.ids.extend(fresh.iter().map(|(_, id)| *id as ImageId));
+        for (vector, id) in fresh {
+            let id = id as ImageId;
+            self.node_of.insert(id, to_node(self.image_ids.len()));
+            self.image_ids.push(id);
+            self.removed.push(false);
+            self.vectors.push(vector);
+        }
+        *self.links.get_mut().unwrap_or_else(PoisonError::into_inner) = None;
+        self.saved = None;
+        Ok(())
     }
 
-    /// Up to `k` nearest nodes as (id, cosine distance), nearest first.
-    pub fn search(&self, query: &[f32], k: usize, ef: usize) -> Vec<(ImageId, f32)> {
-        if self.ids.is_empty() || k == 0 {
+    /// Up to `ef` nearest nodes not marked removed and accepted by `accept`, as
+    /// (id, cosine similarity), most similar first (ties by id).
+    pub fn search(
+        &self,
+        query: &[f32],
+        ef: usize,
+        accept: &dyn Fn(ImageId) -> bool,
+    ) -> Vec<(ImageId, f32)> {
+        if self.image_ids.is_empty() || ef == 0 || query.len() != self.vectors.dim() {
             return Vec::new();
         }
-        self.cell.with_dependent(|_, hnsw| {
-            hnsw.search(query, k, ef.max(k))
-                .into_iter()
-                .map(|n| (n.d_id as ImageId, n.distance))
-                .collect()
+        let links = self.current_links();
+        let links = links.as_ref().expect("current_links fills the links");
+        let query = self.vectors.query(query);
+        let mut hits: Vec<(ImageId, f32)> =
+            compact::search(&self.vectors, links, query.padded(0), ef, |node| {
+                !self.removed[node as usize] && accept(self.image_ids[node as usize])
+            })
+            .into_iter()
+            .map(|(similarity, node)| (self.image_ids[node as usize], similarity))
+            .collect();
+        hits.sort_by(|a, b| b.1.total_cmp(&a.1).then(a.0.cmp(&b.0)));
+        hits
+    }
+
+    /// The compact links, copied from hnsw_rs first if insertions dropped them.
+    fn current_links(&self) -> RwLockReadGuard<'_, Option<Links>> {
+        loop {
+            let links = self.links.read().unwrap_or_else(PoisonError::into_inner);
+            if links.is_some() {
+                return links;
+            }
+            drop(links);
+            let mut slot = self.links.write().unwrap_or_else(PoisonError::into_inner);
+            if slot.is_none() {
+                *slot = Some(self.copy_links());
+            }
+        }
+    }
+
+    /// hnsw_rs' layers in compact form. Each list is ordered by the distance hnsw_rs
+    /// recorded, then by id, exactly as when read from a dump, so a reopened store
+    /// answers exactly as before.
+    fn copy_links(&self) -> Links {
+        let builder = self
+            .builder
+            .as_ref()
+            .expect("links are only dropped by insertions, which create the builder");
+        builder.with_dependent(|_, hnsw| {
+            let points: Vec<Arc<Point<f32>>> = if hnsw.get_point_indexation().get_nb_point() == 0 {
+                Vec::new()
+            } else {
+                hnsw.get_point_indexation().into_iter().collect()
+            };
+            // hnsw_rs names points by (layer, rank in layer); points come layer by
+            // layer in rank order.
+            let mut node_at: Vec<Vec<u32>> = Vec::new();
+            for point in &points {
+                let PointId(layer, _) = point.get_point_id();
+                let layer = usize::from(layer);
+                if node_at.len() <= layer {
+                    node_at.resize_with(layer + 1, Vec::new);
+                }
+                node_at[layer].push(self.node_of[&(point.get_origin_id() as ImageId)]);
+            }
+            let entry = node_at.last().and_then(|top| top.first().copied());
+            let per_point: Vec<(u32, Vec<Vec<u32>>)> = points
+                .par_iter()
+                .map(|point| {
+                    let level = usize::from(point.get_point_id().0);
+                    let lists = point
+                        .get_neighborhood_id()
+                        .into_iter()
+                        .take(level + 1)
+                        .map(|mut list| {
+                            list.sort_by(|a, b| {
+                                a.distance.total_cmp(&b.distance).then(a.d_id.cmp(&b.d_id))
+                            });
+                            list.iter()
+                                .map(|n| node_at[usize::from(n.p_id.0)][n.p_id.1 as usize])
+                                .collect()
+                        })
+                        .collect();
+                    (self.node_of[&(point.get_origin_id() as ImageId)], lists)
+                })
+                .collect();
+            let mut lists = vec![Vec::new(); self.len()];
+            for (node, node_lists) in per_point {
+                lists[node as usize] = node_lists;
+            }
+            Links::new(lists.into_iter(), entry)
         })
+    }
+
+    /// hnsw_rs' graph, read from the saved dump (or made empty) on first use.
+    fn builder(&mut self, capacity: usize) -> Result<&GraphCell, LoadFailure> {
+        if self.builder.is_none() {
+            let cell = match &self.saved {
+                Some(saved) if !self.image_ids.is_empty() => {
+                    load_builder(&saved.dir, &saved.manifest, &self.node_of)?
+                }
+                _ => GraphCell::new(HnswIo::default(), |_| {
+                    Hnsw::new(
+                        self.params.max_nb_connection,
+                        capacity.max(1),
+                        MAX_LAYERS,
+                        self.params.ef_construction,
+                        CosineDistance,
+                    )
+                }),
+            };
+            self.builder = Some(cell);
+        }
+        Ok(self.builder.as_ref().expect("just filled"))
     }
 
     /// Writes the graph as `basename.hnsw.{graph,data}` in `dir`, fsyncs both files and
     /// the directory, and returns their manifest. Must not be called on an empty graph
     /// (hnsw_rs cannot dump a graph without an entry point).
-    pub fn dump(
-        &self,
+    pub(crate) fn dump(
+        &mut self,
         dir: &Path,
         generation: u64,
-        params: &HnswParams,
     ) -> Result<IndexManifest, StoreError> {
         let basename = dump_basename(generation);
         let dump_error = |reason: String| StoreError::IndexDump {
             path: dir.join(&basename),
             reason,
         };
+        let capacity = self.len();
+        let builder = self
+            .builder(capacity)
+            .map_err(|failure| dump_error(failure.to_string()))?;
         // hnsw_rs panics when it cannot create the files.
         let written = catch_unwind(AssertUnwindSafe(|| {
-            self.cell
-                .with_dependent(|_, hnsw| hnsw.file_dump(dir, &basename))
+            builder.with_dependent(|_, hnsw| hnsw.file_dump(dir, &basename))
         }))
         .map_err(|_| dump_error("hnsw_rs panicked while writing".into()))?
         .map_err(|error| dump_error(error.to_string()))?;
@@ -391,15 +443,74 @@ impl Graph {
             files.push(DumpFile { name, len, blake3 });
         }
         sync_dir(dir)?;
-        Ok(IndexManifest {
+        let manifest = IndexManifest {
             generation,
             basename,
-            max_nb_connection: params.max_nb_connection,
-            ef_construction: params.ef_construction,
-            points: self.ids.len() as u64,
+            max_nb_connection: self.params.max_nb_connection,
+            ef_construction: self.params.ef_construction,
+            points: self.len() as u64,
             files,
-        })
+        };
+        self.saved = Some(SavedDump {
+            dir: dir.to_path_buf(),
+            manifest: manifest.clone(),
+        });
+        Ok(manifest)
     }
+}
+
+/// hnsw_rs' own reload of a dump, after checking each file's size and checksum; it
+/// must hold exactly the points `node_of` knows.
+fn load_builder(
+    dir: &Path,
+    manifest: &IndexManifest,
+    node_of: &HashMap<ImageId, u32>,
+) -> Result<GraphCell, LoadFailure> {
+    for file in &manifest.files {
+        let path = dir.join(&file.name);
+        let (len, hash) = match checksum(&path) {
+            Ok(found) => found,
+            Err(error) if error.kind() == std::io::ErrorKind::NotFound => {
+                return Err(LoadFailure::FileMissing(path))
+            }
+            Err(error) => return Err(LoadFailure::Unreadable(error.to_string())),
+        };
+        if len != file.len || hash != file.blake3 {
+            return Err(LoadFailure::FileAltered(path));
+        }
+    }
+    // The checksums make a malformed dump unlikely, but hnsw_rs asserts (panics)
+    // instead of returning errors on bad input, so a panic is still caught here.
+    let loaded = catch_unwind(AssertUnwindSafe(|| {
+        GraphCell::try_new(HnswIo::new(dir, &manifest.basename), |io| {
+            io.load_hnsw_with_dist(CosineDistance)
+        })
+    }));
+    let mut cell = match loaded {
+        Ok(Ok(cell)) => cell,
+        Ok(Err(error)) => return Err(LoadFailure::Unreadable(error.to_string())),
+        Err(_) => return Err(LoadFailure::Unreadable("hnsw_rs panicked".into())),
+    };
+    // A reloaded hnsw_rs graph extends candidates when inserting, a new one does
+    // not; keep insertion behaviour the same whichever way the graph was made.
+    cell.with_dependent_mut(|_, hnsw| hnsw.set_extend_candidates(false));
+    let same_points = cell.with_dependent(|_, hnsw| {
+        let indexation = hnsw.get_point_indexation();
+        indexation.get_nb_point() == node_of.len()
+            && indexation
+                .into_iter()
+                .all(|point| node_of.contains_key(&(point.get_origin_id() as ImageId)))
+    });
+    if !same_points {
+        return Err(LoadFailure::Unreadable(
+            "hnsw_rs reloaded other points than the dump holds".into(),
+        ));
+    }
+    Ok(cell)
+}
+
+fn to_node(index: usize) -> u32 {
+    u32::try_from(index).expect("more than 4 billion images in one graph")
 }
 
 fn checksum(path: &Path) -> std::io::Result<(u64, [u8; 32])> {

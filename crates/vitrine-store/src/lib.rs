@@ -5,6 +5,9 @@
 //! dumped HNSW graph (hnsw_rs, cosine distance) used for nearest-neighbour search.
 //! See [`Store`] for the consistency rules between the two.
 
+mod compact;
+mod distance;
+mod dump;
 mod error;
 mod graph;
 mod keys;
@@ -12,6 +15,6 @@ mod store;
 mod types;
 
 pub use error::StoreError;
-pub use graph::CosineDistance;
+pub use graph::{CosineDistance, Graph};
 pub use store::{Store, FORMAT_VERSION, OLDEST_READABLE_FORMAT};
 pub use types::{ChangeSet, FileError, HnswParams, ImageId, ImageRecord, ModelFingerprint, Upsert};

@@ -6,8 +6,9 @@ use serde::de::DeserializeOwned;
 use serde::Serialize;
 use tracing::{info, warn};
 
+use crate::distance::dot;
 use crate::error::StoreError;
-use crate::graph::{self, dot, Graph, IndexManifest};
+use crate::graph::{self, Graph, IndexManifest};
 use crate::keys;
 use crate::types::{ChangeSet, FileError, HnswParams, ImageId, ImageRecord, ModelFingerprint};
 
@@ -34,16 +35,16 @@ const GRAPH_DIR: &str = "hnsw";
 ///   the dump files are fsynced, and the manifest carries each file's size and blake3
 ///   checksum, so a half-written, truncated or unrecorded dump is never loaded;
 /// - after loading, the graph is reconciled with sled: live ids missing from the graph
-///   are inserted, graph ids no longer live are filtered out of every search, and each
-///   search result is re-checked against sled before it is returned.
+///   are inserted, graph ids no longer live are marked removed (searches step through
+///   them but never return them), and each search result is re-checked against sled
+///   before it is returned.
 pub struct Store {
     dir: PathBuf,
     db: sled::Db,
     fingerprint: ModelFingerprint,
     params: HnswParams,
+    /// Its nodes whose images have been removed from sled are marked removed.
     graph: Graph,
-    /// Graph nodes whose images have been removed from sled.
-    dead: HashSet<ImageId>,
     live_count: usize,
     roots: Vec<(u32, PathBuf)>,
     manifest: Option<IndexManifest>,
@@ -136,10 +137,9 @@ impl Store {
         let mut store = Store {
             dir: dir.to_path_buf(),
             db,
-            graph: Graph::empty(&params, fingerprint.dim, 0),
+            graph: Graph::empty(&params, fingerprint.dim),
             fingerprint,
             params,
-            dead: HashSet::new(),
             live_count: 0,
             roots: Vec::new(),
             manifest,
@@ -162,7 +162,11 @@ impl Store {
             None => None,
         };
         let loaded = loaded.filter(|graph| {
-            let dead = graph.ids().iter().filter(|id| !live.contains(id)).count();
+            let dead = graph
+                .image_ids()
+                .iter()
+                .filter(|id| !live.contains(id))
+                .count();
             let too_many = dead as f64 > MAX_DEAD_FRACTION * graph.len() as f64;
             if too_many {
                 info!(store = %dir.display(), dead, nodes = graph.len(),
@@ -171,8 +175,16 @@ impl Store {
             !too_many
         });
         match loaded {
-            Some(graph) => {
-                store.dead = graph.ids().difference(&live).copied().collect();
+            Some(mut graph) => {
+                let dead: Vec<ImageId> = graph
+                    .image_ids()
+                    .iter()
+                    .filter(|id| !live.contains(id))
+                    .copied()
+                    .collect();
+                for id in dead {
+                    graph.mark_removed(id);
+                }
                 let missing: Vec<ImageId> = live
                     .iter()
                     .filter(|id| !graph.contains(**id))
@@ -190,8 +202,8 @@ impl Store {
                 }
                 let items: Vec<(ImageId, &[f32])> =
                     vectors.iter().map(|(id, v)| (*id, v.as_slice())).collect();
-                store.graph.insert(&items);
                 store.index_was_loaded = true;
+                store.insert_into_graph(&items)?;
             }
             None => {
                 store.rebuild_graph()?;
@@ -422,14 +434,25 @@ impl Store {
         self.apply_durably(batch)?;
 
         self.live_count = self.live_count + new_vectors.len() - removed.len();
-        self.dead
-            .extend(removed.into_iter().filter(|id| self.graph.contains(*id)));
+        for id in removed {
+            self.graph.mark_removed(id);
+        }
         let items: Vec<(ImageId, &[f32])> = new_vectors
             .iter()
             .map(|(id, v)| (*id, v.as_slice()))
             .collect();
-        self.graph.insert(&items);
+        self.insert_into_graph(&items)?;
         Ok(assigned)
+    }
+
+    /// Inserts committed embeddings into the graph; rebuilds the graph from sled when
+    /// hnsw_rs' structure had to be read from a dump that is no longer intact.
+    fn insert_into_graph(&mut self, items: &[(ImageId, &[f32])]) -> Result<(), StoreError> {
+        if let Err(failure) = self.graph.insert(items) {
+            warn!(store = %self.dir.display(), %failure, "rebuilding the hnsw index");
+            self.rebuild_graph()?;
+        }
+        Ok(())
     }
 
     pub fn errors(&self) -> Result<Vec<FileError>, StoreError> {
@@ -455,9 +478,10 @@ impl Store {
     /// restricted to ids for which `filter` (if any) returns true. `query` need not be
     /// normalised.
     ///
-    /// The graph cannot delete nodes, so removed images are skipped: the search asks
-    /// the graph for more candidates (doubling) until `k` live, accepted images are
-    /// found or the graph has nothing more to give. Each result is re-checked in sled.
+    /// The graph cannot delete nodes: the search steps through removed images and
+    /// those `filter` rejects but never returns them, and keeps going until it holds
+    /// `max(ef_search, k)` acceptable images or has seen every node it can reach. Each
+    /// result is re-checked in sled.
     pub fn search(
         &self,
         query: &[f32],
@@ -465,53 +489,48 @@ impl Store {
         filter: Option<&dyn Fn(ImageId) -> bool>,
     ) -> Result<Vec<(ImageId, f32)>, StoreError> {
         let query = normalised(query.to_vec(), self.fingerprint.dim, || "the query".into())?;
-        let graph_len = self.graph.len();
-        if k == 0 || graph_len == 0 {
+        if k == 0 || self.graph.len() == 0 {
             return Ok(Vec::new());
         }
-        let mut fetch = k;
-        loop {
-            let candidates = self
-                .graph
-                .search(&query, fetch, self.params.ef_search.max(fetch));
-            let exhausted = candidates.len() < fetch || fetch >= graph_len;
-            let mut hits = Vec::with_capacity(k);
-            for (id, distance) in candidates {
-                if self.dead.contains(&id) || !filter.is_none_or(|accept| accept(id)) {
-                    continue;
-                }
-                if !self
-                    .db
-                    .contains_key(keys::record(id))
-                    .map_err(self.db_error())?
-                {
-                    continue;
-                }
-                hits.push((id, 1.0 - distance));
-                if hits.len() == k {
-                    break;
-                }
+        let accept = |id: ImageId| filter.is_none_or(|accept| accept(id));
+        let candidates = self
+            .graph
+            .search(&query, self.params.ef_search.max(k), &accept);
+        let mut hits = Vec::with_capacity(k);
+        for (id, similarity) in candidates {
+            if !self
+                .db
+                .contains_key(keys::record(id))
+                .map_err(self.db_error())?
+            {
+                continue;
             }
-            if hits.len() == k || exhausted {
-                return Ok(hits);
+            hits.push((id, similarity));
+            if hits.len() == k {
+                break;
             }
-            fetch = (fetch * 2).min(graph_len);
         }
+        Ok(hits)
     }
 
     /// Persists the graph: dumps it under a new generation, records that generation in
     /// sled, then deletes older dumps. Rebuilds first when too many nodes are removed
-    /// images. Call at the end of an indexing run (and periodically during long ones).
+    /// images. Does nothing when the recorded dump already holds this graph (removals
+    /// alone do not change it). Call at the end of an indexing run (and periodically
+    /// during long ones).
     pub fn save_index(&mut self) -> Result<(), StoreError> {
-        if self.dead.len() as f64 > MAX_DEAD_FRACTION * self.graph.len() as f64 {
+        if self.graph.removed_count() as f64 > MAX_DEAD_FRACTION * self.graph.len() as f64 {
             self.rebuild_graph()?;
+        }
+        if !self.graph.has_unsaved_changes() {
+            return Ok(());
         }
         let manifest = if self.graph.len() == 0 {
             None
         } else {
             let generation = self.manifest.as_ref().map_or(1, |m| m.generation + 1);
             let graph_dir = self.dir.join(GRAPH_DIR);
-            Some(self.graph.dump(&graph_dir, generation, &self.params)?)
+            Some(self.graph.dump(&graph_dir, generation)?)
         };
         match &manifest {
             // One insert of the manifest switches generations atomically; flush() makes
@@ -553,7 +572,6 @@ impl Store {
             .collect();
         info!(store = %self.dir.display(), images = items.len(), "building the hnsw index");
         self.graph = Graph::build(&self.params, dim, &items);
-        self.dead.clear();
         self.index_was_loaded = false;
         Ok(())
     }

@@ -171,10 +171,11 @@ fn commits_after_the_last_save_are_searchable_after_reopen() {
 /// the newer files lie beside it unrecorded.
 #[test]
 fn dump_written_but_not_recorded_is_ignored() {
-    let (data, queries) = dataset(2_000);
+    let (all_data, queries) = dataset(2_001);
+    let data = &all_data[..2_000 * DIM];
     let work = tempfile::tempdir().unwrap();
     let live = work.path().join("live");
-    let (mut store, ids) = populated_store(&live, &data, DIM);
+    let (mut store, ids) = populated_store(&live, data, DIM);
     store.save_index().unwrap(); // generation 1
     let removed: Vec<ImageId> = ids[..150].to_vec();
     remove(&mut store, &removed);
@@ -182,8 +183,20 @@ fn dump_written_but_not_recorded_is_ignored() {
     let crashed = work.path().join("crashed");
     copy_dir(&live, &crashed); // sled: removals committed, generation 1 recorded
 
+    // Generation 2 holds one more image (removals alone leave the graph unchanged
+    // and write no new generation).
     let mut store = Store::open(&live).unwrap();
-    store.save_index().unwrap(); // generation 2 (without the removed images)
+    store
+        .commit(ChangeSet {
+            upserts: vec![Upsert {
+                replaces: None,
+                record: record(2_000),
+                embedding: all_data[2_000 * DIM..].to_vec(),
+            }],
+            ..ChangeSet::default()
+        })
+        .unwrap();
+    store.save_index().unwrap();
     drop(store);
     let newer: Vec<String> = dump_files(&live);
     for name in &newer {
@@ -202,7 +215,7 @@ fn dump_written_but_not_recorded_is_ignored() {
     );
     assert_eq!(store.len(), 2_000 - removed.len());
     let removed: HashSet<ImageId> = removed.into_iter().collect();
-    assert_matches_exact(&store, &data, &ids, &removed, &queries);
+    assert_matches_exact(&store, data, &ids, &removed, &queries);
     // The removed images are themselves the hardest queries: each would be its own
     // nearest neighbour.
     for id in &removed {
@@ -543,4 +556,188 @@ fn empty_store_saves_and_searches() {
         store.search(&[1.0; 3], K, None),
         Err(StoreError::DimensionMismatch { found: 3, .. })
     ));
+}
+
+#[test]
+fn saving_an_unchanged_graph_writes_nothing() {
+    let (data, queries) = dataset(1_500);
+    let dir = tempfile::tempdir().unwrap();
+    let (mut store, ids) = populated_store(dir.path(), &data, DIM);
+    store.save_index().unwrap();
+    let saved = dump_files(dir.path());
+    let bytes = store.index_disk_bytes();
+    drop(store);
+
+    let mut store = Store::open(dir.path()).unwrap();
+    let removed: Vec<ImageId> = ids[..20].to_vec();
+    remove(&mut store, &removed);
+    store.save_index().unwrap();
+    assert_eq!(
+        dump_files(dir.path()),
+        saved,
+        "removals alone keep the dump"
+    );
+    assert_eq!(store.index_disk_bytes(), bytes);
+    drop(store);
+
+    let store = Store::open(dir.path()).unwrap();
+    assert!(store.index_was_loaded());
+    let removed: HashSet<ImageId> = removed.into_iter().collect();
+    assert_matches_exact(&store, &data, &ids, &removed, &queries);
+}
+
+/// A reopened store answers from the dump alone until a commit needs hnsw_rs' own
+/// graph, which is then read from the same dump.
+#[test]
+fn commits_after_reopening_extend_the_loaded_graph() {
+    let (data, queries) = dataset(2_000);
+    let dir = tempfile::tempdir().unwrap();
+    let (mut store, mut ids) = populated_store(dir.path(), &data[..1_500 * DIM], DIM);
+    store.save_index().unwrap();
+    drop(store);
+
+    let mut store = Store::open(dir.path()).unwrap();
+    assert!(store.index_was_loaded());
+    let upserts = (1_500..2_000)
+        .map(|i| Upsert {
+            replaces: None,
+            record: record(i),
+            embedding: data[i * DIM..(i + 1) * DIM].to_vec(),
+        })
+        .collect();
+    ids.extend(
+        store
+            .commit(ChangeSet {
+                upserts,
+                ..ChangeSet::default()
+            })
+            .unwrap(),
+    );
+    assert!(store.index_was_loaded(), "extended, not rebuilt");
+    assert_matches_exact(&store, &data, &ids, &HashSet::new(), &queries);
+    store.save_index().unwrap();
+    let before = search_all(&store, &queries);
+    drop(store);
+
+    let store = Store::open(dir.path()).unwrap();
+    assert!(store.index_was_loaded());
+    assert_eq!(store.len(), 2_000);
+    assert_eq!(search_all(&store, &queries), before);
+}
+
+#[test]
+fn dump_lost_after_opening_is_rebuilt_on_the_next_commit() {
+    let (data, queries) = dataset(2_000);
+    let dir = tempfile::tempdir().unwrap();
+    let (mut store, mut ids) = populated_store(dir.path(), &data[..1_800 * DIM], DIM);
+    store.save_index().unwrap();
+    drop(store);
+
+    let mut store = Store::open(dir.path()).unwrap();
+    for name in dump_files(dir.path()) {
+        fs::remove_file(dir.path().join("hnsw").join(name)).unwrap();
+    }
+    let upserts = (1_800..2_000)
+        .map(|i| Upsert {
+            replaces: None,
+            record: record(i),
+            embedding: data[i * DIM..(i + 1) * DIM].to_vec(),
+        })
+        .collect();
+    ids.extend(
+        store
+            .commit(ChangeSet {
+                upserts,
+                ..ChangeSet::default()
+            })
+            .unwrap(),
+    );
+    assert!(!store.index_was_loaded(), "rebuilt from the database");
+    assert_matches_exact(&store, &data, &ids, &HashSet::new(), &queries);
+    store.save_index().unwrap();
+    drop(store);
+    let store = Store::open(dir.path()).unwrap();
+    assert!(store.index_was_loaded());
+    assert_matches_exact(&store, &data, &ids, &HashSet::new(), &queries);
+}
+
+/// With a filter that accepts almost nothing, the search keeps walking the graph
+/// until it has found every acceptable image.
+#[test]
+fn filter_accepting_few_images_returns_all_of_them_in_order() {
+    let (data, queries) = dataset(2_000);
+    let dir = tempfile::tempdir().unwrap();
+    let (store, ids) = populated_store(dir.path(), &data, DIM);
+    let rows = [17usize, 904, 1_999];
+    let accepted: HashSet<ImageId> = rows.iter().map(|r| ids[*r]).collect();
+    let accept = |id: ImageId| accepted.contains(&id);
+    for query in queries.chunks_exact(DIM) {
+        let hits = store.search(query, K, Some(&accept)).unwrap();
+        // Reference: the accepted rows sorted by exact dot product.
+        let mut expected: Vec<(f32, ImageId)> = rows
+            .iter()
+            .map(|r| {
+                let row = &data[r * DIM..(r + 1) * DIM];
+                (row.iter().zip(query).map(|(a, b)| a * b).sum(), ids[*r])
+            })
+            .collect();
+        expected.sort_by(|a, b| b.0.total_cmp(&a.0));
+        let found: Vec<ImageId> = hits.iter().map(|(id, _)| *id).collect();
+        let expected: Vec<ImageId> = expected.iter().map(|(_, id)| *id).collect();
+        assert_eq!(found, expected);
+    }
+}
+
+/// The first searches after a commit copy the graph into its search form; threads
+/// racing to do so must all get the same answers.
+#[test]
+fn concurrent_searches_after_a_commit_agree() {
+    let (data, queries) = dataset(2_000);
+    let dir = tempfile::tempdir().unwrap();
+    let (mut store, _) = populated_store(dir.path(), &data[..1_000 * DIM], DIM);
+    let upserts = (1_000..2_000)
+        .map(|i| Upsert {
+            replaces: None,
+            record: record(i),
+            embedding: data[i * DIM..(i + 1) * DIM].to_vec(),
+        })
+        .collect();
+    store
+        .commit(ChangeSet {
+            upserts,
+            ..ChangeSet::default()
+        })
+        .unwrap();
+    let answers: Vec<Vec<Vec<(ImageId, f32)>>> = std::thread::scope(|scope| {
+        let workers: Vec<_> = (0..4)
+            .map(|_| scope.spawn(|| search_all(&store, &queries)))
+            .collect();
+        workers.into_iter().map(|w| w.join().unwrap()).collect()
+    });
+    let sequential = search_all(&store, &queries);
+    for answer in answers {
+        assert_eq!(answer, sequential);
+    }
+}
+
+/// A filter may itself search the store (a nested search on the same thread).
+#[test]
+fn filter_may_search_the_same_store() {
+    let (data, queries) = dataset(1_000);
+    let dir = tempfile::tempdir().unwrap();
+    let (store, _) = populated_store(dir.path(), &data, DIM);
+    let query = &queries[..DIM];
+    let best = store.search(query, 1, None).unwrap()[0].0;
+    let not_the_best = |id: ImageId| store.search(query, 1, None).unwrap()[0].0 != id;
+    let hits = store.search(query, K, Some(&not_the_best)).unwrap();
+    assert_eq!(hits.len(), K);
+    assert!(hits.iter().all(|(id, _)| *id != best));
+    // The next K of an unfiltered search; both searches are approximate, so allow one
+    // difference.
+    let unfiltered = store.search(query, K + 1, None).unwrap();
+    let shared = hits
+        .iter()
+        .filter(|hit| unfiltered[1..].contains(hit))
+        .count();
+    assert!(shared >= K - 1, "{shared} of {K} shared");
 }

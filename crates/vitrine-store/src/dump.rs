@@ -1,0 +1,441 @@
+//! Reads an hnsw_rs dump straight into the compact search form, without building
+//! hnsw_rs' own structure (one `Arc` per node and per link), which is what made
+//! opening a large store slow.
+//!
+//! The layout is the one hnsw_rs 0.3 writes with `file_dump` in full mode (its
+//! `hnswio.rs`), all integers native-endian and `usize` as 8 bytes:
+//!
+//! - graph file: description (magic, mode, M, level scale, layer count, ef_construction,
+//!   point count, dimension, distance type name, value type name); layer count again;
+//!   per layer a magic, its point count and its points (magic, origin id, layer, rank,
+//!   then per layer a neighbour count and neighbours as origin id, layer, rank,
+//!   distance); finally the entry point (origin id, layer, rank);
+//! - data file: magic and dimension, then per point in the same order a magic, the
+//!   origin id, the byte length and the f32 values.
+//!
+//! The checksum recorded in the manifest is computed while reading, in the same pass.
+//! `tests::parsed_dump_equals_hnsw_rs_reload` checks this reader against hnsw_rs' own.
+
+use std::fs::File;
+use std::io::{self, BufReader, Read};
+use std::path::{Path, PathBuf};
+
+use crate::compact::{Links, Vectors};
+use crate::graph::{CosineDistance, IndexManifest, LoadFailure, MAX_LAYERS};
+use crate::types::ImageId;
+
+const MAGIC_DESCRIPTION: u32 = 0x002a_6779;
+const MAGIC_LAYER: u32 = 0x000a_676f;
+const MAGIC_POINT: u32 = 0x000a_678f;
+const MAGIC_DATA: u32 = 0xa67f_0000;
+/// `file_dump` always writes full mode (point ids with every neighbour).
+const FULL_MODE: u8 = 1;
+/// Longer neighbour lists than hnsw_rs can make (it caps M at 256, layer 0 at 2M)
+/// mean a malformed file; refusing them bounds allocations.
+const MAX_LIST: usize = 512;
+
+/// A dump in search form: node `n` is the `n`-th point of the dump.
+pub struct CompactDump {
+    pub vectors: Vectors,
+    pub image_ids: Vec<ImageId>,
+    pub links: Links,
+}
+
+/// Reads the dump `manifest` describes from `dir`, checking every file's length and
+/// checksum. `dim` is the store's embedding dimension.
+pub fn read(dir: &Path, manifest: &IndexManifest, dim: usize) -> Result<CompactDump, LoadFailure> {
+    let file = |suffix: &str| {
+        manifest
+            .files
+            .iter()
+            .find(|f| f.name.ends_with(suffix))
+            .ok_or_else(|| LoadFailure::Unreadable(format!("manifest lists no {suffix} file")))
+    };
+    let graph_file = file(".hnsw.graph")?;
+    let data_file = file(".hnsw.data")?;
+    let points = usize::try_from(manifest.points)
+        .map_err(|_| LoadFailure::Unreadable("point count overflows".into()))?;
+    let (graph, data) = rayon::join(
+        || read_checked(dir, graph_file, |input| read_graph(input, dim, points)),
+        || read_checked(dir, data_file, |input| read_data(input, dim, points)),
+    );
+    let graph = graph?;
+    let (vectors, data_origins) = data?;
+    if data_origins != graph.origins {
+        return Err(LoadFailure::Unreadable(
+            "graph and data files list different points".into(),
+        ));
+    }
+    Ok(CompactDump {
+        vectors,
+        image_ids: graph.origins,
+        links: graph.links,
+    })
+}
+
+/// Parses one file with `parse` while hashing it, then checks length and checksum. A
+/// file that fails to parse is reported as altered when its checksum differs.
+fn read_checked<T>(
+    dir: &Path,
+    expected: &crate::graph::DumpFile,
+    parse: impl FnOnce(&mut Fields) -> io::Result<T>,
+) -> Result<T, LoadFailure> {
+    let path = dir.join(&expected.name);
+    let opened = File::open(&path).and_then(|file| Ok((file.metadata()?.len(), file)));
+    let file = match opened {
+        Ok((len, _)) if len != expected.len => return Err(LoadFailure::FileAltered(path)),
+        Ok((_, file)) => file,
+        Err(error) if error.kind() == io::ErrorKind::NotFound => {
+            return Err(LoadFailure::FileMissing(path))
+        }
+        Err(error) => return Err(LoadFailure::Unreadable(error.to_string())),
+    };
+    let mut fields = Fields {
+        input: BufReader::with_capacity(
+            1 << 20,
+            Hashing {
+                inner: file,
+                hasher: blake3::Hasher::new(),
+            },
+        ),
+    };
+    let parsed = parse(&mut fields).and_then(|value| {
+        let mut extra = [0u8; 1];
+        if fields.input.read(&mut extra)? != 0 {
+            return Err(malformed("bytes after the end"));
+        }
+        Ok(value)
+    });
+    // Hash whatever the parser left unread, so a damaged file is named as such.
+    let drained = io::copy(&mut fields.input, &mut io::sink());
+    let altered = |path: PathBuf| LoadFailure::FileAltered(path);
+    if drained.is_err() || *fields.input.get_ref().hasher.finalize().as_bytes() != expected.blake3 {
+        return Err(altered(path));
+    }
+    parsed.map_err(|error| LoadFailure::Unreadable(format!("{}: {error}", path.display())))
+}
+
+/// Passes reads through while hashing every byte.
+struct Hashing<R> {
+    inner: R,
+    hasher: blake3::Hasher,
+}
+
+impl<R: Read> Read for Hashing<R> {
+    fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
+        let read = self.inner.read(buf)?;
+        self.hasher.update(&buf[..read]);
+        Ok(read)
+    }
+}
+
+struct Fields {
+    input: BufReader<Hashing<File>>,
+}
+
+impl Fields {
+    fn bytes<const N: usize>(&mut self) -> io::Result<[u8; N]> {
+        let mut bytes = [0u8; N];
+        self.input.read_exact(&mut bytes)?;
+        Ok(bytes)
+    }
+
+    fn u8(&mut self) -> io::Result<u8> {
+        Ok(self.bytes::<1>()?[0])
+    }
+
+    fn u32(&mut self) -> io::Result<u32> {
+        self.bytes().map(u32::from_ne_bytes)
+    }
+
+    fn i32(&mut self) -> io::Result<i32> {
+        self.bytes().map(i32::from_ne_bytes)
+    }
+
+    fn u64(&mut self) -> io::Result<u64> {
+        self.bytes().map(u64::from_ne_bytes)
+    }
+
+    fn f32(&mut self) -> io::Result<f32> {
+        self.bytes().map(f32::from_ne_bytes)
+    }
+
+    /// A `usize` as hnsw_rs writes it on 64-bit targets.
+    fn size(&mut self) -> io::Result<usize> {
+        usize::try_from(self.u64()?).map_err(|_| malformed("size overflows"))
+    }
+
+    fn magic(&mut self, expected: u32, what: &str) -> io::Result<()> {
+        if self.u32()? != expected {
+            return Err(malformed(&format!("bad magic number at {what}")));
+        }
+        Ok(())
+    }
+
+    fn name(&mut self) -> io::Result<String> {
+        let len = self.size()?;
+        if len > 256 {
+            return Err(malformed("type name longer than 256 bytes"));
+        }
+        let mut bytes = vec![0u8; len];
+        self.input.read_exact(&mut bytes)?;
+        String::from_utf8(bytes).map_err(|_| malformed("type name is not UTF-8"))
+    }
+}
+
+fn malformed(reason: &str) -> io::Error {
+    io::Error::new(io::ErrorKind::InvalidData, reason.to_string())
+}
+
+struct GraphPart {
+    origins: Vec<ImageId>,
+    links: Links,
+}
+
+/// A neighbour as the dump names it, until every layer's size is known.
+struct Neighbour {
+    distance: f32,
+    origin: u64,
+    layer: u8,
+    rank: u32,
+}
+
+fn read_graph(input: &mut Fields, dim: usize, points: usize) -> io::Result<GraphPart> {
+    input.magic(MAGIC_DESCRIPTION, "the description")?;
+    if input.u8()? != FULL_MODE {
+        return Err(malformed("not a full-mode dump"));
+    }
+    let _max_nb_connection = input.u8()?;
+    let _level_scale = input.bytes::<8>()?;
+    let layers = usize::from(input.u8()?);
+    let _ef_construction = input.size()?;
+    if input.size()? != points {
+        return Err(malformed("point count differs from the manifest's"));
+    }
+    if input.size()? != dim {
+        return Err(malformed("dimension differs from the store's"));
+    }
+    if input.name()? != std::any::type_name::<CosineDistance>() {
+        return Err(malformed("written with another distance"));
+    }
+    if input.name()? != std::any::type_name::<f32>() {
+        return Err(malformed("values are not f32"));
+    }
+    if layers > MAX_LAYERS || usize::from(input.u8()?) != layers {
+        return Err(malformed("bad layer count"));
+    }
+
+    let mut origins = Vec::with_capacity(points);
+    let mut raw_lists: Vec<Vec<Vec<Neighbour>>> = Vec::with_capacity(points);
+    let mut layer_start = Vec::with_capacity(layers + 1);
+    for layer in 0..layers {
+        input.magic(MAGIC_LAYER, "a layer")?;
+        let count = input.size()?;
+        if count > points - origins.len() {
+            return Err(malformed("more points than the description says"));
+        }
+        layer_start.push(origins.len());
+        for rank in 0..count {
+            input.magic(MAGIC_POINT, "a point")?;
+            origins.push(input.u64()?);
+            if usize::from(input.u8()?) != layer || usize::try_from(input.i32()?) != Ok(rank) {
+                return Err(malformed("point stored out of place"));
+            }
+            // hnsw_rs also writes lists above a point's own level (never searched).
+            let mut lists = Vec::with_capacity(layer + 1);
+            for list_layer in 0..layers {
+                let len = input.size()?;
+                if len > MAX_LIST {
+                    return Err(malformed("neighbour list too long"));
+                }
+                let mut list = Vec::with_capacity(if list_layer <= layer { len } else { 0 });
+                for _ in 0..len {
+                    let neighbour = Neighbour {
+                        origin: input.u64()?,
+                        layer: input.u8()?,
+                        rank: u32::try_from(input.i32()?)
+                            .map_err(|_| malformed("negative rank"))?,
+                        distance: input.f32()?,
+                    };
+                    if list_layer <= layer {
+                        list.push(neighbour);
+                    }
+                }
+                if list_layer <= layer {
+                    lists.push(list);
+                }
+            }
+            raw_lists.push(lists);
+        }
+    }
+    layer_start.push(origins.len());
+    if origins.len() != points {
+        return Err(malformed("fewer points than the description says"));
+    }
+    let node_of = |layer: u8, rank: u32| -> io::Result<u32> {
+        let layer = usize::from(layer);
+        let (Some(&start), Some(&end)) = (layer_start.get(layer), layer_start.get(layer + 1))
+        else {
+            return Err(malformed("neighbour in a missing layer"));
+        };
+        let node = start + rank as usize;
+        if node >= end {
+            return Err(malformed("neighbour beyond its layer"));
+        }
+        Ok(node as u32)
+    };
+    let _entry_origin = input.u64()?;
+    let (entry_layer, entry_rank) = (input.u8()?, input.i32()?);
+    let entry_rank = u32::try_from(entry_rank).map_err(|_| malformed("negative rank"))?;
+    node_of(entry_layer, entry_rank)?;
+
+    let mut lists = Vec::with_capacity(points);
+    for node_lists in raw_lists {
+        let mut resolved = Vec::with_capacity(node_lists.len());
+        for mut list in node_lists {
+            list.sort_by(|a, b| {
+                a.distance
+                    .total_cmp(&b.distance)
+                    .then(a.origin.cmp(&b.origin))
+            });
+            resolved.push(
+                list.iter()
+                    .map(|n| node_of(n.layer, n.rank))
+                    .collect::<io::Result<Vec<u32>>>()?,
+            );
+        }
+        lists.push(resolved);
+    }
+    // Same rule as for a graph copied from memory: the first point of the top layer.
+    let entry = layer_start
+        .windows(2)
+        .rev()
+        .find(|w| w[1] > w[0])
+        .map(|w| w[0] as u32);
+    Ok(GraphPart {
+        origins,
+        links: Links::new(lists.into_iter(), entry),
+    })
+}
+
+fn read_data(input: &mut Fields, dim: usize, points: usize) -> io::Result<(Vectors, Vec<ImageId>)> {
+    input.magic(MAGIC_DATA, "the data header")?;
+    if input.size()? != dim {
+        return Err(malformed("data dimension differs from the store's"));
+    }
+    let mut vectors = Vectors::with_capacity(dim, points);
+    let mut origins = Vec::with_capacity(points);
+    let mut row = vec![0u8; dim * 4];
+    for _ in 0..points {
+        input.magic(MAGIC_DATA, "a vector")?;
+        origins.push(input.u64()?);
+        if input.size()? != row.len() {
+            return Err(malformed("vector of the wrong length"));
+        }
+        input.input.read_exact(&mut row)?;
+        vectors.push_ne_bytes(&row);
+    }
+    Ok((vectors, origins))
+}
+
+#[cfg(test)]
+mod tests {
+    use std::collections::{HashMap, HashSet};
+
+    use hnsw_rs::prelude::HnswIo;
+    use rand::{Rng, SeedableRng};
+    use rand_chacha::ChaCha8Rng;
+
+    use super::*;
+    use crate::graph::Graph;
+    use crate::types::HnswParams;
+
+    const DIM: usize = 12;
+
+    fn graph(points: usize) -> (Graph, Vec<f32>) {
+        let mut rng = ChaCha8Rng::seed_from_u64(3);
+        let data: Vec<f32> = (0..points * DIM)
+            .map(|_| rng.random_range(-1.0..1.0))
+            .collect();
+        let items: Vec<(ImageId, &[f32])> = data
+            .chunks_exact(DIM)
+            .enumerate()
+            .map(|(i, row)| (1_000 + 7 * i as ImageId, row))
+            .collect();
+        (Graph::build(&HnswParams::default(), DIM, &items), data)
+    }
+
+    /// Reference: hnsw_rs' own reload of the same dump.
+    #[test]
+    fn parsed_dump_equals_hnsw_rs_reload() {
+        let dir = tempfile::tempdir().unwrap();
+        let (mut graph, _) = graph(3_000);
+        let manifest = graph.dump(dir.path(), 1).unwrap();
+        let parsed = read(dir.path(), &manifest, DIM).unwrap();
+
+        let io = HnswIo::new(dir.path(), &manifest.basename);
+        let reloaded = io.load_hnsw_with_dist(CosineDistance).unwrap();
+        let node_of: HashMap<ImageId, u32> = parsed
+            .image_ids
+            .iter()
+            .enumerate()
+            .map(|(node, id)| (*id, node as u32))
+            .collect();
+        let mut seen = 0;
+        let mut links = 0;
+        for point in reloaded.get_point_indexation() {
+            let id = point.get_origin_id() as ImageId;
+            let node = node_of[&id];
+            assert_eq!(point.get_v(), &parsed.vectors.padded(node as usize)[..DIM]);
+            let level = usize::from(point.get_point_id().0);
+            for (layer, expected) in point.get_neighborhood_id().iter().enumerate() {
+                let found: HashSet<ImageId> = parsed
+                    .links
+                    .neighbours(node, layer)
+                    .iter()
+                    .map(|n| parsed.image_ids[*n as usize])
+                    .collect();
+                if layer > level {
+                    assert!(found.is_empty(), "lists above a node's level are dropped");
+                    continue;
+                }
+                let expected: HashSet<ImageId> =
+                    expected.iter().map(|n| n.d_id as ImageId).collect();
+                assert_eq!(found, expected, "node {id}, layer {layer}");
+                links += found.len();
+            }
+            seen += 1;
+        }
+        assert_eq!(seen, 3_000);
+        assert!(links > 3_000 * 8, "a real graph, not an empty one");
+        let entry = parsed.links.entry().unwrap();
+        assert_eq!(
+            parsed.links.level(entry),
+            usize::from(reloaded.get_max_level_observed())
+        );
+    }
+
+    #[test]
+    fn any_damaged_byte_is_refused() {
+        let dir = tempfile::tempdir().unwrap();
+        let (mut graph, _) = graph(300);
+        let manifest = graph.dump(dir.path(), 1).unwrap();
+        for file in &manifest.files {
+            let path = dir.path().join(&file.name);
+            let original = std::fs::read(&path).unwrap();
+            let mut damaged = original.clone();
+            damaged[original.len() / 3] ^= 0x10;
+            std::fs::write(&path, &damaged).unwrap();
+            assert!(matches!(
+                read(dir.path(), &manifest, DIM),
+                Err(LoadFailure::FileAltered(_))
+            ));
+            std::fs::write(&path, &original).unwrap();
+        }
+        assert!(read(dir.path(), &manifest, DIM).is_ok());
+        assert!(matches!(
+            read(dir.path(), &manifest, DIM + 1),
+            Err(LoadFailure::Unreadable(_))
+        ));
+    }
+}
