@@ -10,14 +10,33 @@
 //!    is fitted to the matches with RANSAC over two-match samples, followed
 //!    by a least-squares refit on the inliers. Crops, resizes, borders and
 //!    small rotations are all such transforms.
-//! 3. **Pixels**: the second image's grey thumbnail is resampled into the
-//!    first one's frame through that transform, and the two are compared by
-//!    normalised cross-correlation on their overlap, after removing the best
-//!    planar fit from each. Removing the plane is what rejects look-alike
-//!    gradients and skies: a linear ramp carries no evidence of being the
-//!    same picture, only the structure left on top of it does.
+//! 3. **Alignment**: the transform is refined by a small search over shifts,
+//!    scales and rotations that best lines up the two images' details
+//!    (below); the patch grid alone places them only to within a few pixels.
+//! 4. **Pixels**: the second image's thumbnails are resampled into the
+//!    first one's frame through that transform, and the two are compared on
+//!    their overlap three times, by normalised cross-correlation:
+//!    - *structure*: grey levels after removing the best planar fit from
+//!      each. Removing the plane is what rejects look-alike gradients and
+//!      skies: a linear ramp carries no evidence of being the same picture,
+//!      only the structure left on top of it does.
+//!    - *detail*: each colour channel minus its local 5x5 mean (a band of
+//!      roughly 4 to 20 pixels of the model's input). Two photographs of
+//!      different objects staged alike (same backdrop, same framing) share
+//!      their coarse structure, but not the texture and colour details,
+//!      which survive re-encoding, resizing and brightness changes of one
+//!      picture.
+//!    - *colour*: red, green and blue together around one common mean, which
+//!      tolerates brightness and contrast changes (one gain and offset for
+//!      all channels) but not a change of hue: the same object in another
+//!      colour, or on another backdrop.
 //!
-//! The score is the correlation of step 3 (0 without a usable transform).
+//! The score is the structure correlation; the pair is confirmed when all
+//! three correlations reach their minimum (0 without a usable transform).
+//! The minima were measured on the demo collection's planted copies against
+//! its look-alike product shots, and on edited copies of real photos (the
+//! `near_duplicate_quality` example and the `near_duplicates_real_photos`
+//! test).
 //! Each image's evidence is computed once, so the cost is one forward pass
 //! per image involved in a candidate pair plus a small comparison per pair.
 
@@ -39,12 +58,22 @@ pub struct ImageEvidence {
     tokens: PatchTokens,
     /// Grey levels of the model's input crop, `THUMB_SIDE²`, row-major.
     thumbnail: Vec<f32>,
+    /// Red, green and blue of the same thumbnail minus their local mean.
+    detail: [Vec<f32>; 3],
+    /// Red, green and blue of the thumbnail.
+    colour: [Vec<f32>; 3],
     /// Side of the model's input crop, in pixels.
     crop_side: f32,
 }
 
 /// Thumbnail side: the 224-pixel input crop averaged over 4x4 blocks.
 const THUMB_SIDE: usize = 56;
+
+/// Detail correlation a confirmed pair needs; measured, see the
+/// `near_duplicate_quality` example and DEVELOPERS.md.
+pub const DEFAULT_MIN_DETAIL_CORRELATION: f32 = 0.55;
+/// Colour correlation a confirmed pair needs; measured likewise.
+pub const DEFAULT_MIN_COLOUR_CORRELATION: f32 = 0.94;
 
 /// Knobs of the check.
 #[derive(Clone, Debug)]
@@ -56,8 +85,12 @@ pub struct VerifyOptions {
     /// Scale and rotation a transform may have.
     pub max_scale_ratio: f32,
     pub max_rotation_degrees: f32,
-    /// Pixel correlation (after plane removal) at which a pair is confirmed.
+    /// Grey-level correlation (after plane removal) at which a pair is confirmed.
     pub min_correlation: f32,
+    /// Correlation of the colour details at which a pair is confirmed.
+    pub min_detail_correlation: f32,
+    /// Colour correlation at which a pair is confirmed.
+    pub min_colour_correlation: f32,
 }
 
 impl Default for VerifyOptions {
@@ -68,6 +101,8 @@ impl Default for VerifyOptions {
             max_scale_ratio: 3.0,
             max_rotation_degrees: 25.0,
             min_correlation: 0.5,
+            min_detail_correlation: DEFAULT_MIN_DETAIL_CORRELATION,
+            min_colour_correlation: DEFAULT_MIN_COLOUR_CORRELATION,
         }
     }
 }
@@ -76,8 +111,12 @@ impl Default for VerifyOptions {
 #[derive(Clone, Copy, Debug, PartialEq, Serialize)]
 pub struct PairCheck {
     pub confirmed: bool,
-    /// Normalised correlation of the aligned, plane-removed thumbnails.
+    /// Normalised correlation of the aligned, plane-removed grey thumbnails.
     pub score: f32,
+    /// Normalised correlation of the aligned thumbnails' colour details.
+    pub detail: f32,
+    /// Correlation of the aligned thumbnails' colours (see `colour_correlation`).
+    pub colour: f32,
     /// Mutual-nearest-neighbour token matches and those fitting the transform.
     pub matches: usize,
     pub inliers: usize,
@@ -102,6 +141,41 @@ impl SimilarityTransform {
             self.a * x - self.b * y + self.tx,
             self.b * x + self.a * y + self.ty,
         ]
+    }
+
+    /// The same transform followed by a shift of `(dx, dy)`.
+    fn shifted(&self, dx: f32, dy: f32) -> Self {
+        Self {
+            tx: self.tx + dx,
+            ty: self.ty + dy,
+            ..*self
+        }
+    }
+
+    /// The same transform with its scale multiplied by `factor`, keeping the
+    /// image of `centre` in place.
+    fn scaled_about(&self, centre: [f32; 2], factor: f32) -> Self {
+        let [cx, cy] = self.apply(centre);
+        Self {
+            a: self.a * factor,
+            b: self.b * factor,
+            tx: factor * self.tx + (1.0 - factor) * cx,
+            ty: factor * self.ty + (1.0 - factor) * cy,
+        }
+    }
+
+    /// The same transform followed by a rotation by `degrees` about the image
+    /// of `centre`.
+    fn rotated_about(&self, centre: [f32; 2], degrees: f32) -> Self {
+        let [cx, cy] = self.apply(centre);
+        let (sin, cos) = degrees.to_radians().sin_cos();
+        let (x, y) = (self.tx - cx, self.ty - cy);
+        Self {
+            a: cos * self.a - sin * self.b,
+            b: sin * self.a + cos * self.b,
+            tx: cos * x - sin * y + cx,
+            ty: sin * x + cos * y + cy,
+        }
     }
 
     fn scale(&self) -> f32 {
@@ -179,8 +253,11 @@ impl ImageEvidence {
             .into_iter()
             .zip(prepared)
             .map(|((embedding, tokens), image)| {
+                let colour = colour_thumbnail(image, &spec.mean, &spec.std);
                 let evidence = ImageEvidence {
-                    thumbnail: grey_thumbnail(image, &spec.mean, &spec.std),
+                    thumbnail: grey_thumbnail(&colour),
+                    detail: colour.clone().map(|plane| local_detail(&plane)),
+                    colour,
                     crop_side: image.width as f32,
                     tokens,
                 };
@@ -201,24 +278,51 @@ impl ImageEvidence {
     }
 }
 
-/// De-normalises the planar input and averages 4x4 blocks of luma.
-fn grey_thumbnail(image: &PreparedImage, mean: &[f32; 3], std: &[f32; 3]) -> Vec<f32> {
+/// De-normalises the planar input and averages 4x4 blocks of each channel.
+fn colour_thumbnail(image: &PreparedImage, mean: &[f32; 3], std: &[f32; 3]) -> [Vec<f32>; 3] {
     let (width, height) = (image.width as usize, image.height as usize);
     let plane = width * height;
     let block = (width / THUMB_SIDE).max(1);
-    let weights = [0.299, 0.587, 0.114];
-    let mut thumb = vec![0.0f32; THUMB_SIDE * THUMB_SIDE];
-    for y in 0..(THUMB_SIDE * block).min(height) {
-        for x in 0..(THUMB_SIDE * block).min(width) {
-            let luma: f32 = (0..3)
-                .map(|c| weights[c] * (image.chw[c * plane + y * width + x] * std[c] + mean[c]))
+    let area = (block * block) as f32;
+    std::array::from_fn(|c| {
+        let mut thumb = vec![0.0f32; THUMB_SIDE * THUMB_SIDE];
+        for y in 0..(THUMB_SIDE * block).min(height) {
+            for x in 0..(THUMB_SIDE * block).min(width) {
+                let value = image.chw[c * plane + y * width + x] * std[c] + mean[c];
+                thumb[(y / block) * THUMB_SIDE + x / block] += value / area;
+            }
+        }
+        thumb
+    })
+}
+
+fn grey_thumbnail(colour: &[Vec<f32>; 3]) -> Vec<f32> {
+    const LUMA: [f32; 3] = [0.299, 0.587, 0.114];
+    (0..THUMB_SIDE * THUMB_SIDE)
+        .map(|i| (0..3).map(|c| LUMA[c] * colour[c][i]).sum())
+        .collect()
+}
+
+/// Half the side of the window whose mean is removed to keep the details.
+const DETAIL_RADIUS: usize = 2;
+
+/// `plane` minus its mean over a `(2·DETAIL_RADIUS + 1)²` window (clipped at
+/// the edges).
+fn local_detail(plane: &[f32]) -> Vec<f32> {
+    let mut detail = Vec::with_capacity(plane.len());
+    for y in 0..THUMB_SIDE {
+        let rows = y.saturating_sub(DETAIL_RADIUS)..(y + DETAIL_RADIUS + 1).min(THUMB_SIDE);
+        for x in 0..THUMB_SIDE {
+            let cols = x.saturating_sub(DETAIL_RADIUS)..(x + DETAIL_RADIUS + 1).min(THUMB_SIDE);
+            let count = (rows.len() * cols.len()) as f32;
+            let sum: f32 = rows
+                .clone()
+                .flat_map(|ny| plane[ny * THUMB_SIDE..][cols.clone()].iter())
                 .sum();
-            thumb[(y / block) * THUMB_SIDE + x / block] += luma;
+            detail.push(plane[y * THUMB_SIDE + x] - sum / count);
         }
     }
-    let area = (block * block) as f32;
-    thumb.iter_mut().for_each(|v| *v /= area);
-    thumb
+    detail
 }
 
 /// Cosine similarities of every token of `a` with every token of `b`,
@@ -363,60 +467,164 @@ fn fit_transform(
 /// Fewest overlapping thumbnail pixels a comparison is made on.
 const MIN_OVERLAP_PIXELS: usize = THUMB_SIDE * THUMB_SIDE / 8;
 
-/// Correlation of `a`'s thumbnail with `b`'s resampled through `transform`,
-/// each with its best plane removed; `None` when the overlap is too small.
-fn aligned_correlation(
+/// Where each cell centre of `a`'s thumbnail falls in `b`'s thumbnail, in
+/// `b`'s cells; `None` outside `b`.
+fn aligned_cells<'t>(
+    a: &'t ImageEvidence,
+    b: &'t ImageEvidence,
+    transform: &'t SimilarityTransform,
+) -> impl Iterator<Item = (usize, f32, f32)> + 't {
+    let a_cell = a.crop_side / THUMB_SIDE as f32;
+    let b_cell = b.crop_side / THUMB_SIDE as f32;
+    let last = (THUMB_SIDE - 1) as f32;
+    (0..THUMB_SIDE * THUMB_SIDE).filter_map(move |index| {
+        let (x, y) = (index % THUMB_SIDE, index / THUMB_SIDE);
+        let centre = [(x as f32 + 0.5) * a_cell, (y as f32 + 0.5) * a_cell];
+        let [bx, by] = transform.apply(centre);
+        let (u, v) = (bx / b_cell - 0.5, by / b_cell - 0.5);
+        ((0.0..=last).contains(&u) && (0.0..=last).contains(&v)).then_some((index, u, v))
+    })
+}
+
+/// Correlation of the plane-removed grey thumbnails on their overlap;
+/// `None` when the overlap is too small.
+fn structure_correlation(
     a: &ImageEvidence,
     b: &ImageEvidence,
     transform: &SimilarityTransform,
 ) -> Option<f32> {
-    let a_cell = a.crop_side / THUMB_SIDE as f32;
-    let b_cell = b.crop_side / THUMB_SIDE as f32;
-    let mut samples: Vec<([f32; 2], f32, f32)> = Vec::with_capacity(THUMB_SIDE * THUMB_SIDE);
-    for y in 0..THUMB_SIDE {
-        for x in 0..THUMB_SIDE {
-            let centre = [(x as f32 + 0.5) * a_cell, (y as f32 + 0.5) * a_cell];
-            let [bx, by] = transform.apply(centre);
-            let (u, v) = (bx / b_cell - 0.5, by / b_cell - 0.5);
-            if let Some(value) = bilinear(&b.thumbnail, u, v) {
-                let position = [x as f32 / THUMB_SIDE as f32, y as f32 / THUMB_SIDE as f32];
-                samples.push((position, a.thumbnail[y * THUMB_SIDE + x], value));
-            }
-        }
+    let mut positions = Vec::new();
+    let (mut values_a, mut values_b) = (Vec::new(), Vec::new());
+    for (index, u, v) in aligned_cells(a, b, transform) {
+        let (x, y) = (index % THUMB_SIDE, index / THUMB_SIDE);
+        positions.push([x as f32 / THUMB_SIDE as f32, y as f32 / THUMB_SIDE as f32]);
+        values_a.push(a.thumbnail[index]);
+        values_b.push(bilinear(&b.thumbnail, u, v));
     }
-    if samples.len() < MIN_OVERLAP_PIXELS {
+    if positions.len() < MIN_OVERLAP_PIXELS {
         return None;
     }
-    let positions: Vec<[f32; 2]> = samples.iter().map(|s| s.0).collect();
-    let residual_a = plane_residual(&positions, samples.iter().map(|s| s.1));
-    let residual_b = plane_residual(&positions, samples.iter().map(|s| s.2));
+    let residual_a = plane_residual(&positions, values_a.into_iter());
+    let residual_b = plane_residual(&positions, values_b.into_iter());
+    Some(correlation(
+        residual_a.iter().zip(&residual_b).map(|(x, y)| (*x, *y)),
+        positions.len(),
+    ))
+}
+
+/// Correlation of the colour details on the overlap (0 when it is too small).
+fn detail_correlation(
+    a: &ImageEvidence,
+    b: &ImageEvidence,
+    transform: &SimilarityTransform,
+) -> f32 {
+    let cells: Vec<(usize, f32, f32)> = aligned_cells(a, b, transform).collect();
+    if cells.len() < MIN_OVERLAP_PIXELS {
+        return 0.0;
+    }
+    let pairs = cells.iter().flat_map(|&(index, u, v)| {
+        (0..3).map(move |c| (a.detail[c][index], bilinear(&b.detail[c], u, v)))
+    });
+    correlation(pairs, cells.len())
+}
+
+/// Correlation of the red, green and blue values taken together, around one
+/// common mean: high when one picture's colours are the other's under a
+/// brightness and contrast change (the same gain and offset on every
+/// channel), low when the hues differ.
+fn colour_correlation(
+    a: &ImageEvidence,
+    b: &ImageEvidence,
+    transform: &SimilarityTransform,
+) -> f32 {
+    let cells: Vec<(usize, f32, f32)> = aligned_cells(a, b, transform).collect();
+    if cells.len() < MIN_OVERLAP_PIXELS {
+        return 0.0;
+    }
+    let values: Vec<(f32, f32)> = cells
+        .iter()
+        .flat_map(|&(index, u, v)| {
+            (0..3).map(move |c| (a.colour[c][index], bilinear(&b.colour[c], u, v)))
+        })
+        .collect();
+    let count = values.len() as f32;
+    let mean_a = values.iter().map(|p| p.0).sum::<f32>() / count;
+    let mean_b = values.iter().map(|p| p.1).sum::<f32>() / count;
+    correlation(
+        values.into_iter().map(|(x, y)| (x - mean_a, y - mean_b)),
+        cells.len(),
+    )
+}
+
+/// Shifts (crop pixels) and scale factors tried around the fitted transform,
+/// coarse then fine: patch centres place a match only to within a few pixels,
+/// and details 4 pixels wide decorrelate when misplaced by half that.
+const COARSE_SHIFTS: [f32; 9] = [-12.0, -9.0, -6.0, -3.0, 0.0, 3.0, 6.0, 9.0, 12.0];
+const FINE_SHIFTS: [f32; 5] = [-1.0, -0.5, 0.0, 0.5, 1.0];
+const SCALES: [f32; 9] = [0.92, 0.94, 0.96, 0.98, 1.0, 1.02, 1.04, 1.06, 1.08];
+const ROTATIONS_DEGREES: [f32; 7] = [-3.0, -2.0, -1.0, 0.0, 1.0, 2.0, 3.0];
+
+/// The transform near `fitted` that best lines up the details, and that
+/// correlation.
+fn refine_alignment(
+    a: &ImageEvidence,
+    b: &ImageEvidence,
+    fitted: SimilarityTransform,
+) -> (SimilarityTransform, f32) {
+    let centre = [a.crop_side / 2.0; 2];
+    let mut best = (fitted, detail_correlation(a, b, &fitted));
+    let consider = |candidate: SimilarityTransform, best: &mut (SimilarityTransform, f32)| {
+        let score = detail_correlation(a, b, &candidate);
+        if score > best.1 {
+            *best = (candidate, score);
+        }
+    };
+    for shifts in [&COARSE_SHIFTS[..], &FINE_SHIFTS[..], &FINE_SHIFTS[..]] {
+        let base = best.0;
+        for &dy in shifts {
+            for &dx in shifts {
+                consider(base.shifted(dx, dy), &mut best);
+            }
+        }
+        let base = best.0;
+        for &factor in &SCALES {
+            consider(base.scaled_about(centre, factor), &mut best);
+        }
+        let base = best.0;
+        for &degrees in &ROTATIONS_DEGREES {
+            consider(base.rotated_about(centre, degrees), &mut best);
+        }
+    }
+    best
+}
+
+/// Normalised cross-correlation of zero-centred values; 0 when either side
+/// carries no more energy than compression noise.
+fn correlation(pairs: impl Iterator<Item = (f32, f32)>, overlap: usize) -> f32 {
     let (mut ab, mut aa, mut bb) = (0.0f64, 0.0f64, 0.0f64);
-    for (x, y) in residual_a.iter().zip(&residual_b) {
+    for (x, y) in pairs {
         ab += f64::from(x * y);
         aa += f64::from(x * x);
         bb += f64::from(y * y);
     }
-    // Residual energy below this (grey levels on 0..1, per pixel) is
+    // Residual energy below this (levels on 0..1, per pixel) is
     // compression noise, not structure: nothing to correlate.
-    let floor = 1e-5 * samples.len() as f64;
+    let floor = 1e-5 * overlap as f64;
     if aa < floor || bb < floor {
-        return Some(0.0);
+        return 0.0;
     }
-    Some((ab / (aa * bb).sqrt()) as f32)
+    (ab / (aa * bb).sqrt()) as f32
 }
 
-fn bilinear(thumb: &[f32], u: f32, v: f32) -> Option<f32> {
-    let last = (THUMB_SIDE - 1) as f32;
-    if !(0.0..=last).contains(&u) || !(0.0..=last).contains(&v) {
-        return None;
-    }
+/// `thumb` at `(u, v)`, which must lie inside the grid.
+fn bilinear(thumb: &[f32], u: f32, v: f32) -> f32 {
     let (x0, y0) = (u.floor() as usize, v.floor() as usize);
     let (x1, y1) = ((x0 + 1).min(THUMB_SIDE - 1), (y0 + 1).min(THUMB_SIDE - 1));
     let (fx, fy) = (u - x0 as f32, v - y0 as f32);
     let at = |x: usize, y: usize| thumb[y * THUMB_SIDE + x];
     let top = at(x0, y0) * (1.0 - fx) + at(x1, y0) * fx;
     let bottom = at(x0, y1) * (1.0 - fx) + at(x1, y1) * fx;
-    Some(top * (1.0 - fy) + bottom * fy)
+    top * (1.0 - fy) + bottom * fy
 }
 
 /// `values` minus their least-squares plane `c0 + c1·x + c2·y`.
@@ -467,17 +675,26 @@ fn plane_residual(positions: &[[f32; 2]], values: impl Iterator<Item = f32>) -> 
 /// Checks whether two images show the same picture.
 pub fn compare(a: &ImageEvidence, b: &ImageEvidence, options: &VerifyOptions) -> PairCheck {
     let matches = mutual_nearest(a, b, options.min_token_similarity);
-    let fitted = fit_transform(a, b, &matches, options);
-    let (score, inliers) = match fitted {
-        Some((transform, inliers)) => (
-            aligned_correlation(a, b, &transform).unwrap_or(0.0),
-            inliers,
-        ),
-        None => (0.0, 0),
+    let (score, detail, colour, inliers) = match fit_transform(a, b, &matches, options) {
+        Some((fitted, inliers)) => {
+            let (aligned, detail) = refine_alignment(a, b, fitted);
+            let structure = structure_correlation(a, b, &aligned).unwrap_or(0.0);
+            (
+                structure,
+                detail,
+                colour_correlation(a, b, &aligned),
+                inliers,
+            )
+        }
+        None => (0.0, 0.0, 0.0, 0),
     };
     PairCheck {
-        confirmed: score >= options.min_correlation,
+        confirmed: score >= options.min_correlation
+            && detail >= options.min_detail_correlation
+            && colour >= options.min_colour_correlation,
         score,
+        detail,
+        colour,
         matches: matches.len(),
         inliers,
     }
@@ -561,8 +778,19 @@ impl<'a> PairVerifier<'a> {
 
     /// Checks two files against each other.
     pub fn check(&self, a: &Path, b: &Path) -> Result<PairCheck, EngineError> {
-        let (a, b) = (self.evidence(a)?, self.evidence(b)?);
-        Ok(compare(&a, &b, &self.options))
+        let check = compare(&*self.evidence(a)?, &*self.evidence(b)?, &self.options);
+        tracing::debug!(
+            first = %a.display(),
+            second = %b.display(),
+            structure = check.score,
+            detail = check.detail,
+            colour = check.colour,
+            matches = check.matches,
+            inliers = check.inliers,
+            confirmed = check.confirmed,
+            "pair verified"
+        );
+        Ok(check)
     }
 }
 
