@@ -4,19 +4,20 @@
 //! `Arc<RwLock<..>>` of `Arc`s, each vector in its own allocation, and hashes visited
 //! nodes into a map; a profile of its search showed most time waiting on the pointer
 //! chase from a neighbour to its id. Here nodes are dense `u32` numbers, neighbour
-//! lists are flat arrays (CSR), all vectors sit in one 64-byte-aligned block, and the
-//! visited set is an array of generation stamps reused across queries.
+//! lists are flat `u32` arrays (layer 0 in fixed-size slots, so the next node's list
+//! can be prefetched), all vectors sit in one 64-byte-aligned block, and the visited
+//! set is an array of generation stamps reused across queries.
 //!
 //! The search is the one of Malkov & Yashunin (2018): greedy descent through the upper
 //! layers (Algorithm 5), then a beam search of width `ef` on layer 0 (Algorithm 2),
 //! where nodes that are not accepted (removed images, filters) are still traversed but
 //! never returned, and the beam keeps going until it holds `ef` accepted nodes.
 
-use std::cell::RefCell;
+use std::cell::Cell;
 use std::cmp::{Ordering, Reverse};
 use std::collections::BinaryHeap;
 
-use crate::distance::dot_kernel;
+use crate::distance::{self, Isa};
 
 /// Floats per 64-byte cache line.
 const LINE_FLOATS: usize = 16;
@@ -57,15 +58,25 @@ impl Vectors {
         self.padded_mut(start)[..row.len()].copy_from_slice(row);
     }
 
-    /// Appends a row given as `dim` native-endian f32s (the layout hnsw_rs dumps).
-    pub fn push_ne_bytes(&mut self, bytes: &[u8]) {
-        debug_assert_eq!(bytes.len(), self.dim * 4);
+    /// Appends a row whose `dim` native-endian f32s (the layout hnsw_rs dumps) `fill`
+    /// writes into the given bytes; the row is dropped again when `fill` fails.
+    pub fn push_ne_bytes_from<E>(
+        &mut self,
+        fill: impl FnOnce(&mut [u8]) -> Result<(), E>,
+    ) -> Result<(), E> {
         let start = self.lines.len();
         self.lines.resize(start + self.lines_per_row, ZERO_LINE);
+        let bytes = self.dim * 4;
         let row = self.padded_mut(start);
-        for (value, chunk) in row.iter_mut().zip(bytes.chunks_exact(4)) {
-            *value = f32::from_ne_bytes([chunk[0], chunk[1], chunk[2], chunk[3]]);
+        // SAFETY: the floats are plain memory that any bit pattern is valid for, and
+        // `bytes` is within the row.
+        let row_bytes =
+            unsafe { std::slice::from_raw_parts_mut(row.as_mut_ptr().cast::<u8>(), bytes) };
+        let filled = fill(row_bytes);
+        if filled.is_err() {
+            self.lines.truncate(start);
         }
+        filled
     }
 
     /// Row `index` with its zero padding.
@@ -97,21 +108,33 @@ impl Vectors {
         row
     }
 
+    /// Asks the CPU to start loading the first cache line of row `index`.
+    #[inline]
+    fn prefetch_start(&self, index: usize) {
+        prefetch(&self.lines[index * self.lines_per_row]);
+    }
+
     /// Asks the CPU to start loading row `index` into cache.
     #[inline]
     fn prefetch(&self, index: usize) {
-        #[cfg(target_arch = "x86_64")]
-        {
-            use std::arch::x86_64::{_mm_prefetch, _MM_HINT_T0};
-            let start = index * self.lines_per_row;
-            for line in &self.lines[start..start + self.lines_per_row] {
-                // SAFETY: prefetching is a hint and never faults; the address is in bounds.
-                unsafe { _mm_prefetch::<_MM_HINT_T0>((line as *const Line).cast::<i8>()) };
-            }
+        let start = index * self.lines_per_row;
+        for line in &self.lines[start..start + self.lines_per_row] {
+            prefetch(line);
         }
-        #[cfg(not(target_arch = "x86_64"))]
-        let _ = index;
     }
+}
+
+/// Asks the CPU to start loading the cache line holding `value`.
+#[inline(always)]
+fn prefetch<T>(value: &T) {
+    #[cfg(target_arch = "x86_64")]
+    {
+        use std::arch::x86_64::{_mm_prefetch, _MM_HINT_T0};
+        // SAFETY: prefetching is a hint that never faults, and the address is valid.
+        unsafe { _mm_prefetch::<_MM_HINT_T0>((value as *const T).cast::<i8>()) };
+    }
+    #[cfg(not(target_arch = "x86_64"))]
+    let _ = value;
 }
 
 /// Marks a node without upper layers in `upper_first`, and an empty graph's entry.
@@ -122,8 +145,10 @@ pub struct Links {
     /// Where searches start: a node of the top layer.
     entry: u32,
     levels: Vec<u8>,
-    /// Layer 0 in CSR form: node `n`'s neighbours are `base[base_start[n]..base_start[n + 1]]`.
-    base_start: Vec<u32>,
+    /// Layer 0, every node's list in a slot of `base_stride` numbers: the list's
+    /// length, then the list (a fixed stride puts a node's list at a known address,
+    /// which can be prefetched).
+    base_stride: usize,
     base: Vec<u32>,
     /// Layers 1 and up, only for the few nodes that reach them. For a node of level
     /// `L >= 1`, `upper_first[n]` indexes `L + 1` offsets in `upper_start`; layer `l`'s
@@ -137,39 +162,36 @@ impl Links {
     /// Links from each node's lists (one per layer, from 0 up to the node's level) and
     /// the search entry point, a node of the top layer.
     pub fn new(nodes: impl ExactSizeIterator<Item = Vec<Vec<u32>>>, entry: Option<u32>) -> Links {
-        let n = nodes.len();
-        let mut links = Links {
-            entry: entry.unwrap_or(NONE),
-            levels: Vec::with_capacity(n),
-            base_start: Vec::with_capacity(n + 1),
-            base: Vec::new(),
-            upper_first: Vec::with_capacity(n),
-            upper_start: Vec::new(),
-            upper: Vec::new(),
-        };
-        links.base_start.push(0);
+        let mut builder = LinksBuilder::with_capacity(nodes.len());
         for lists in nodes {
-            let level = lists.len().saturating_sub(1);
-            links
-                .levels
-                .push(u8::try_from(level).expect("hnsw_rs has at most 16 layers"));
-            let mut layers = lists.iter();
-            if let Some(base) = layers.next() {
-                links.base.extend_from_slice(base);
-            }
-            links.base_start.push(to_u32(links.base.len()));
-            if level == 0 {
-                links.upper_first.push(NONE);
-                continue;
-            }
-            links.upper_first.push(to_u32(links.upper_start.len()));
-            links.upper_start.push(to_u32(links.upper.len()));
-            for list in layers {
-                links.upper.extend_from_slice(list);
-                links.upper_start.push(to_u32(links.upper.len()));
+            builder.add_node(lists.len().saturating_sub(1));
+            for list in lists {
+                builder.add_list(list);
             }
         }
-        links
+        builder.finish(entry)
+    }
+
+    /// Replaces every node number (in lists and the entry point) by `map`'s answer;
+    /// false, leaving the links half-mapped, when `map` has none for one of them.
+    pub fn map_nodes(&mut self, map: impl Fn(u32) -> Option<u32>) -> bool {
+        let nodes = self.len();
+        let base_lists = self
+            .base
+            .chunks_exact_mut(self.base_stride)
+            .flat_map(|slot| {
+                let (len, list) = slot.split_first_mut().expect("a slot holds its length");
+                list[..*len as usize].iter_mut()
+            });
+        let entry = (self.entry != NONE).then_some(&mut self.entry);
+        let mut all = true;
+        for node in base_lists.chain(&mut self.upper).chain(entry) {
+            match map(*node) {
+                Some(mapped) if (mapped as usize) < nodes => *node = mapped,
+                _ => all = false,
+            }
+        }
+        all
     }
 
     pub fn len(&self) -> usize {
@@ -184,13 +206,25 @@ impl Links {
         usize::from(self.levels[node as usize])
     }
 
+    /// Asks the CPU to start loading node `node`'s layer 0 list.
+    #[inline]
+    fn prefetch_base(&self, node: u32) {
+        let start = node as usize * self.base_stride;
+        for word in self.base[start..start + self.base_stride]
+            .iter()
+            .step_by(16)
+        {
+            prefetch(word);
+        }
+    }
+
     /// Node `node`'s neighbours on `layer` (none above its level).
     #[inline]
     pub fn neighbours(&self, node: u32, layer: usize) -> &[u32] {
         let node = node as usize;
         if layer == 0 {
-            let (start, end) = (self.base_start[node], self.base_start[node + 1]);
-            return &self.base[start as usize..end as usize];
+            let slot = &self.base[node * self.base_stride..(node + 1) * self.base_stride];
+            return &slot[1..1 + slot[0] as usize];
         }
         if layer > usize::from(self.levels[node]) {
             return &[];
@@ -198,6 +232,88 @@ impl Links {
         let offsets = self.upper_first[node] as usize + layer - 1;
         let (start, end) = (self.upper_start[offsets], self.upper_start[offsets + 1]);
         &self.upper[start as usize..end as usize]
+    }
+}
+
+/// Makes [`Links`] one node at a time, in node order: `add_node` with the node's
+/// level, then `add_list` once per layer from 0 up to that level.
+pub struct LinksBuilder {
+    links: Links,
+    /// Layer 0 in CSR form until `finish`: node `n`'s list is
+    /// `base[base_start[n]..base_start[n + 1]]`.
+    base_start: Vec<u32>,
+    base: Vec<u32>,
+    /// Lists the current node still needs.
+    lists_left: usize,
+}
+
+impl LinksBuilder {
+    pub fn with_capacity(nodes: usize) -> LinksBuilder {
+        let mut base_start = Vec::with_capacity(nodes + 1);
+        base_start.push(0);
+        LinksBuilder {
+            links: Links {
+                entry: NONE,
+                levels: Vec::with_capacity(nodes),
+                base_stride: 1,
+                base: Vec::new(),
+                upper_first: Vec::with_capacity(nodes),
+                upper_start: Vec::new(),
+                upper: Vec::new(),
+            },
+            base_start,
+            base: Vec::new(),
+            lists_left: 0,
+        }
+    }
+
+    pub fn add_node(&mut self, level: usize) {
+        assert_eq!(self.lists_left, 0, "the previous node lacks lists");
+        let links = &mut self.links;
+        links
+            .levels
+            .push(u8::try_from(level).expect("hnsw_rs has at most 16 layers"));
+        if level == 0 {
+            links.upper_first.push(NONE);
+        } else {
+            links.upper_first.push(to_u32(links.upper_start.len()));
+            links.upper_start.push(to_u32(links.upper.len()));
+        }
+        self.lists_left = level + 1;
+    }
+
+    pub fn add_list(&mut self, list: impl IntoIterator<Item = u32>) {
+        assert!(self.lists_left > 0, "more lists than layers");
+        let level = usize::from(*self.links.levels.last().expect("add_node comes first"));
+        if self.lists_left == level + 1 {
+            self.base.extend(list);
+            self.base_start.push(to_u32(self.base.len()));
+        } else {
+            let links = &mut self.links;
+            links.upper.extend(list);
+            links.upper_start.push(to_u32(links.upper.len()));
+        }
+        self.lists_left -= 1;
+    }
+
+    pub fn finish(mut self, entry: Option<u32>) -> Links {
+        assert_eq!(self.lists_left, 0, "the last node lacks lists");
+        let lists = self
+            .base_start
+            .windows(2)
+            .map(|w| w[0] as usize..w[1] as usize);
+        let longest = lists.clone().map(|list| list.len()).max().unwrap_or(0);
+        let stride = longest + 1;
+        let mut base = Vec::with_capacity(self.links.levels.len() * stride);
+        for list in lists {
+            base.push(to_u32(list.len()));
+            base.extend_from_slice(&self.base[list.clone()]);
+            base.resize(base.len() + longest - list.len(), NONE);
+        }
+        self.links.base_stride = stride;
+        self.links.base = base;
+        self.links.entry = entry.unwrap_or(NONE);
+        self.links
     }
 }
 
@@ -272,16 +388,11 @@ impl Scratch {
 }
 
 thread_local! {
-    static SCRATCH: RefCell<Scratch> = RefCell::new(Scratch::default());
+    static SCRATCH: Cell<Scratch> = Cell::new(Scratch::default());
 }
 
-fn with_scratch<R>(work: impl FnOnce(&mut Scratch) -> R) -> R {
-    SCRATCH.with(|cell| match cell.try_borrow_mut() {
-        Ok(mut scratch) => work(&mut scratch),
-        // A filter that itself searches on this thread: give the inner search its own.
-        Err(_) => work(&mut Scratch::default()),
-    })
-}
+/// How many vectors ahead of the dot product the layer 0 search loads a vector.
+const PREFETCH_AHEAD: usize = 3;
 
 /// Up to `ef` nodes nearest to `query` among those `accept` returns true for, as
 /// (dot product, node), most similar first. `query` is a padded row as made by
@@ -293,17 +404,63 @@ pub fn search(
     ef: usize,
     accept: impl Fn(u32) -> bool,
 ) -> Vec<(f32, u32)> {
+    // One copy of the search per instruction set, with the dot product inlined.
+    match distance::isa() {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: `isa()` reports AVX-512F only when the CPU has it.
+        Isa::Avx512 => unsafe { search_avx512(vectors, links, query, ef, accept) },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: `isa()` reports AVX2 + FMA only when the CPU has them.
+        Isa::Avx2Fma => unsafe { search_avx2_fma(vectors, links, query, ef, accept) },
+        _ => search_with(vectors, links, query, ef, accept, distance::dot_portable),
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn search_avx512(
+    vectors: &Vectors,
+    links: &Links,
+    query: &[f32],
+    ef: usize,
+    accept: impl Fn(u32) -> bool,
+) -> Vec<(f32, u32)> {
+    // SAFETY: this function only runs on CPUs with AVX-512F.
+    let dot = |a: &[f32], b: &[f32]| unsafe { distance::dot_avx512(a, b) };
+    search_with(vectors, links, query, ef, accept, dot)
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn search_avx2_fma(
+    vectors: &Vectors,
+    links: &Links,
+    query: &[f32],
+    ef: usize,
+    accept: impl Fn(u32) -> bool,
+) -> Vec<(f32, u32)> {
+    // SAFETY: this function only runs on CPUs with AVX2 and FMA.
+    let dot = |a: &[f32], b: &[f32]| unsafe { distance::dot_avx2_fma(a, b) };
+    search_with(vectors, links, query, ef, accept, dot)
+}
+
+#[inline(always)]
+fn search_with(
+    vectors: &Vectors,
+    links: &Links,
+    query: &[f32],
+    ef: usize,
+    accept: impl Fn(u32) -> bool,
+    dot: impl Fn(&[f32], &[f32]) -> f32,
+) -> Vec<(f32, u32)> {
     let Some(entry) = links.entry() else {
         return Vec::new();
     };
     if ef == 0 {
         return Vec::new();
     }
-    let dot = dot_kernel();
-    let distance = |node: u32| -dot(query, vectors.padded(node as usize));
-
     let mut nearest = Scored {
-        distance: distance(entry),
+        distance: distance(&dot, vectors, query, entry),
         node: entry,
     };
     for layer in (1..=links.level(entry)).rev() {
@@ -311,7 +468,7 @@ pub fn search(
             let mut moved = false;
             for &node in links.neighbours(nearest.node, layer) {
                 let candidate = Scored {
-                    distance: distance(node),
+                    distance: distance(&dot, vectors, query, node),
                     node,
                 };
                 if candidate < nearest {
@@ -325,56 +482,79 @@ pub fn search(
         }
     }
 
-    with_scratch(|scratch| {
-        scratch.start(links.len());
-        scratch.visit(nearest.node);
-        scratch.candidates.push(Reverse(nearest));
-        if accept(nearest.node) {
-            scratch.results.push(nearest);
+    // Taken out of the thread-local for the whole search (a search nested in
+    // `accept` finds it empty and makes its own); no closure stands between the loop
+    // and the inlined dot product.
+    let mut scratch = SCRATCH.take();
+    scratch.start(links.len());
+    scratch.visit(nearest.node);
+    scratch.candidates.push(Reverse(nearest));
+    if accept(nearest.node) {
+        scratch.results.push(nearest);
+    }
+    // The distance a node must beat to enter a full result list.
+    let mut bound = scratch
+        .results
+        .peek()
+        .map_or(f32::INFINITY, |worst| worst.distance);
+    while let Some(Reverse(current)) = scratch.candidates.pop() {
+        if current.distance > bound && scratch.results.len() >= ef {
+            break;
         }
-        // The distance a node must beat to enter a full result list.
-        let mut bound = scratch
-            .results
-            .peek()
-            .map_or(f32::INFINITY, |worst| worst.distance);
-        while let Some(Reverse(current)) = scratch.candidates.pop() {
-            if current.distance > bound && scratch.results.len() >= ef {
-                break;
+        scratch.unvisited.clear();
+        for &node in links.neighbours(current.node, 0) {
+            if scratch.visit(node) {
+                scratch.unvisited.push(node);
             }
-            scratch.unvisited.clear();
-            for &node in links.neighbours(current.node, 0) {
-                if scratch.visit(node) {
-                    scratch.unvisited.push(node);
-                }
+        }
+        // Start every vector's first line loading, then load each vector fully a few
+        // dot products ahead (measured: 1, 3 and 5 ahead are within noise of each
+        // other; prefetching every vector fully at once is slower).
+        for &node in &scratch.unvisited {
+            vectors.prefetch_start(node as usize);
+        }
+        for &node in scratch.unvisited.iter().take(PREFETCH_AHEAD) {
+            vectors.prefetch(node as usize);
+        }
+        for (i, &node) in scratch.unvisited.iter().enumerate() {
+            if let Some(&next) = scratch.unvisited.get(i + PREFETCH_AHEAD) {
+                vectors.prefetch(next as usize);
             }
-            // Load the next vector while computing with this one.
-            if let Some(&first) = scratch.unvisited.first() {
-                vectors.prefetch(first as usize);
-            }
-            for (i, &node) in scratch.unvisited.iter().enumerate() {
-                if let Some(&next) = scratch.unvisited.get(i + 1) {
-                    vectors.prefetch(next as usize);
-                }
-                let scored = Scored {
-                    distance: distance(node),
-                    node,
-                };
-                if scratch.results.len() < ef || scored.distance < bound {
-                    scratch.candidates.push(Reverse(scored));
-                    if accept(node) {
-                        scratch.results.push(scored);
-                        if scratch.results.len() > ef {
-                            scratch.results.pop();
-                        }
-                        bound = scratch.results.peek().map_or(bound, |worst| worst.distance);
+            let scored = Scored {
+                distance: distance(&dot, vectors, query, node),
+                node,
+            };
+            if scratch.results.len() < ef || scored.distance < bound {
+                scratch.candidates.push(Reverse(scored));
+                if accept(node) {
+                    scratch.results.push(scored);
+                    if scratch.results.len() > ef {
+                        scratch.results.pop();
                     }
+                    bound = scratch.results.peek().map_or(bound, |worst| worst.distance);
                 }
             }
         }
-        let mut found: Vec<Scored> = scratch.results.drain().collect();
-        found.sort_unstable();
-        found.into_iter().map(|s| (-s.distance, s.node)).collect()
-    })
+        // The next node to expand is known now: start loading its list.
+        if let Some(Reverse(next)) = scratch.candidates.peek() {
+            links.prefetch_base(next.node);
+        }
+    }
+    let mut found: Vec<Scored> = scratch.results.drain().collect();
+    SCRATCH.set(scratch);
+    found.sort_unstable();
+    found.into_iter().map(|s| (-s.distance, s.node)).collect()
+}
+
+/// Distance from `query` to node `node` (the negated dot product).
+#[inline(always)]
+fn distance(
+    dot: &impl Fn(&[f32], &[f32]) -> f32,
+    vectors: &Vectors,
+    query: &[f32],
+    node: u32,
+) -> f32 {
+    -dot(query, vectors.padded(node as usize))
 }
 
 #[cfg(test)]
@@ -434,7 +614,7 @@ mod tests {
     #[test]
     fn beam_search_on_a_ring_is_exact_and_honours_acceptance() {
         let (vectors, links) = ring(40);
-        let even = |node: u32| node % 2 == 0;
+        let even = |node: u32| node.is_multiple_of(2);
         for step in 0..40 {
             let angle = std::f32::consts::TAU * (step as f32 + 0.3) / 40.0;
             let query = vectors.query(&[angle.cos(), angle.sin()]);

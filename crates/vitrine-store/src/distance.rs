@@ -9,20 +9,44 @@ use std::sync::OnceLock;
 
 type Kernel = fn(&[f32], &[f32]) -> f32;
 
+/// The instruction sets a kernel can use, best first.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Isa {
+    Avx512,
+    Avx2Fma,
+    Portable,
+}
+
+static ISA: OnceLock<Isa> = OnceLock::new();
+
+/// The best instruction set this CPU has, detected once.
+pub fn isa() -> Isa {
+    *ISA.get_or_init(|| {
+        #[cfg(target_arch = "x86_64")]
+        {
+            if std::arch::is_x86_feature_detected!("avx512f") {
+                return Isa::Avx512;
+            }
+            if std::arch::is_x86_feature_detected!("avx2")
+                && std::arch::is_x86_feature_detected!("fma")
+            {
+                return Isa::Avx2Fma;
+            }
+        }
+        Isa::Portable
+    })
+}
+
 static KERNEL: OnceLock<Kernel> = OnceLock::new();
 
 fn select_kernel() -> Kernel {
-    #[cfg(target_arch = "x86_64")]
-    {
-        if std::arch::is_x86_feature_detected!("avx512f") {
-            return dot_avx512_checked;
-        }
-        if std::arch::is_x86_feature_detected!("avx2") && std::arch::is_x86_feature_detected!("fma")
-        {
-            return dot_avx2_fma_checked;
-        }
+    match isa() {
+        #[cfg(target_arch = "x86_64")]
+        Isa::Avx512 => dot_avx512_checked,
+        #[cfg(target_arch = "x86_64")]
+        Isa::Avx2Fma => dot_avx2_fma_checked,
+        _ => dot_portable,
     }
-    dot_portable
 }
 
 /// Dot product of two vectors over their common length.
@@ -31,15 +55,9 @@ pub fn dot(a: &[f32], b: &[f32]) -> f32 {
     KERNEL.get_or_init(select_kernel)(a, b)
 }
 
-/// The kernel `dot` uses, for loops that call it many times (one indirect call, no
-/// lazy-initialisation check per call).
-pub fn dot_kernel() -> Kernel {
-    *KERNEL.get_or_init(select_kernel)
-}
-
 /// Eight independent partial sums, which the compiler can map onto SIMD lanes
 /// (a single running sum forces strictly sequential float additions).
-fn dot_portable(a: &[f32], b: &[f32]) -> f32 {
+pub fn dot_portable(a: &[f32], b: &[f32]) -> f32 {
     const LANES: usize = 8;
     let n = a.len().min(b.len());
     let (a, b) = (&a[..n], &b[..n]);
@@ -60,23 +78,25 @@ fn dot_portable(a: &[f32], b: &[f32]) -> f32 {
     sums.iter().sum::<f32>() + tail
 }
 
-/// Only ever selected after `avx2` and `fma` were detected.
+/// Only ever selected when `isa()` is `Avx2Fma`.
 #[cfg(target_arch = "x86_64")]
 fn dot_avx2_fma_checked(a: &[f32], b: &[f32]) -> f32 {
     // SAFETY: `select_kernel` returns this function only when the CPU has AVX2 and FMA.
     unsafe { dot_avx2_fma(a, b) }
 }
 
-/// Only ever selected after `avx512f` was detected.
+/// Only ever selected when `isa()` is `Avx512`.
 #[cfg(target_arch = "x86_64")]
 fn dot_avx512_checked(a: &[f32], b: &[f32]) -> f32 {
     // SAFETY: `select_kernel` returns this function only when the CPU has AVX-512F.
     unsafe { dot_avx512(a, b) }
 }
 
+/// # Safety
+/// The CPU must have AVX2 and FMA.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx2,fma")]
-unsafe fn dot_avx2_fma(a: &[f32], b: &[f32]) -> f32 {
+pub unsafe fn dot_avx2_fma(a: &[f32], b: &[f32]) -> f32 {
     use std::arch::x86_64::*;
     let n = a.len().min(b.len());
     let (pa, pb) = (a.as_ptr(), b.as_ptr());
@@ -110,9 +130,11 @@ unsafe fn dot_avx2_fma(a: &[f32], b: &[f32]) -> f32 {
     total
 }
 
+/// # Safety
+/// The CPU must have AVX-512F.
 #[cfg(target_arch = "x86_64")]
 #[target_feature(enable = "avx512f")]
-unsafe fn dot_avx512(a: &[f32], b: &[f32]) -> f32 {
+pub unsafe fn dot_avx512(a: &[f32], b: &[f32]) -> f32 {
     use std::arch::x86_64::*;
     let n = a.len().min(b.len());
     let (pa, pb) = (a.as_ptr(), b.as_ptr());

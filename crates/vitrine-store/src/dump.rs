@@ -18,10 +18,10 @@
 
 use std::fs::File;
 use std::io::{self, BufReader, Read};
-use std::path::{Path, PathBuf};
+use std::path::Path;
 
-use crate::compact::{Links, Vectors};
-use crate::graph::{CosineDistance, IndexManifest, LoadFailure, MAX_LAYERS};
+use crate::compact::{Links, LinksBuilder, Vectors};
+use crate::graph::{CosineDistance, DumpFile, IndexManifest, LoadFailure, MAX_LAYERS};
 use crate::types::ImageId;
 
 const MAGIC_DESCRIPTION: u32 = 0x002a_6779;
@@ -77,7 +77,7 @@ pub fn read(dir: &Path, manifest: &IndexManifest, dim: usize) -> Result<CompactD
 /// file that fails to parse is reported as altered when its checksum differs.
 fn read_checked<T>(
     dir: &Path,
-    expected: &crate::graph::DumpFile,
+    expected: &DumpFile,
     parse: impl FnOnce(&mut Fields) -> io::Result<T>,
 ) -> Result<T, LoadFailure> {
     let path = dir.join(&expected.name);
@@ -108,9 +108,8 @@ fn read_checked<T>(
     });
     // Hash whatever the parser left unread, so a damaged file is named as such.
     let drained = io::copy(&mut fields.input, &mut io::sink());
-    let altered = |path: PathBuf| LoadFailure::FileAltered(path);
     if drained.is_err() || *fields.input.get_ref().hasher.finalize().as_bytes() != expected.blake3 {
-        return Err(altered(path));
+        return Err(LoadFailure::FileAltered(path));
     }
     parsed.map_err(|error| LoadFailure::Unreadable(format!("{}: {error}", path.display())))
 }
@@ -192,12 +191,24 @@ struct GraphPart {
     links: Links,
 }
 
-/// A neighbour as the dump names it, until every layer's size is known.
+/// A neighbour as the dump lists it.
 struct Neighbour {
     distance: f32,
     origin: u64,
-    layer: u8,
-    rank: u32,
+    /// (layer, rank) packed by `pack`, until every layer's size is known.
+    packed: u32,
+}
+
+/// Bits of a packed (layer, rank) for the rank; layers (< 16) take the top 4 bits.
+const RANK_BITS: u32 = 28;
+
+fn pack(layer: u8, rank: i32) -> io::Result<u32> {
+    match u32::try_from(rank) {
+        Ok(rank) if rank < 1 << RANK_BITS && usize::from(layer) < MAX_LAYERS => {
+            Ok(u32::from(layer) << RANK_BITS | rank)
+        }
+        _ => Err(malformed("bad point id")),
+    }
 }
 
 fn read_graph(input: &mut Fields, dim: usize, points: usize) -> io::Result<GraphPart> {
@@ -226,7 +237,8 @@ fn read_graph(input: &mut Fields, dim: usize, points: usize) -> io::Result<Graph
     }
 
     let mut origins = Vec::with_capacity(points);
-    let mut raw_lists: Vec<Vec<Vec<Neighbour>>> = Vec::with_capacity(points);
+    let mut builder = LinksBuilder::with_capacity(points);
+    let mut list = Vec::new();
     let mut layer_start = Vec::with_capacity(layers + 1);
     for layer in 0..layers {
         input.magic(MAGIC_LAYER, "a layer")?;
@@ -241,81 +253,61 @@ fn read_graph(input: &mut Fields, dim: usize, points: usize) -> io::Result<Graph
             if usize::from(input.u8()?) != layer || usize::try_from(input.i32()?) != Ok(rank) {
                 return Err(malformed("point stored out of place"));
             }
-            // hnsw_rs also writes lists above a point's own level (never searched).
-            let mut lists = Vec::with_capacity(layer + 1);
+            builder.add_node(layer);
             for list_layer in 0..layers {
                 let len = input.size()?;
                 if len > MAX_LIST {
                     return Err(malformed("neighbour list too long"));
                 }
-                let mut list = Vec::with_capacity(if list_layer <= layer { len } else { 0 });
+                list.clear();
                 for _ in 0..len {
-                    let neighbour = Neighbour {
-                        origin: input.u64()?,
-                        layer: input.u8()?,
-                        rank: u32::try_from(input.i32()?)
-                            .map_err(|_| malformed("negative rank"))?,
-                        distance: input.f32()?,
-                    };
-                    if list_layer <= layer {
-                        list.push(neighbour);
-                    }
+                    let origin = input.u64()?;
+                    let packed = pack(input.u8()?, input.i32()?)?;
+                    let distance = input.f32()?;
+                    list.push(Neighbour {
+                        distance,
+                        origin,
+                        packed,
+                    });
                 }
+                // hnsw_rs also writes lists above a point's own level (never searched).
                 if list_layer <= layer {
-                    lists.push(list);
+                    list.sort_by(|a, b| {
+                        a.distance
+                            .total_cmp(&b.distance)
+                            .then(a.origin.cmp(&b.origin))
+                    });
+                    builder.add_list(list.iter().map(|n| n.packed));
                 }
             }
-            raw_lists.push(lists);
         }
     }
     layer_start.push(origins.len());
     if origins.len() != points {
         return Err(malformed("fewer points than the description says"));
     }
-    let node_of = |layer: u8, rank: u32| -> io::Result<u32> {
-        let layer = usize::from(layer);
-        let (Some(&start), Some(&end)) = (layer_start.get(layer), layer_start.get(layer + 1))
-        else {
-            return Err(malformed("neighbour in a missing layer"));
-        };
-        let node = start + rank as usize;
-        if node >= end {
-            return Err(malformed("neighbour beyond its layer"));
-        }
-        Ok(node as u32)
-    };
     let _entry_origin = input.u64()?;
-    let (entry_layer, entry_rank) = (input.u8()?, input.i32()?);
-    let entry_rank = u32::try_from(entry_rank).map_err(|_| malformed("negative rank"))?;
-    node_of(entry_layer, entry_rank)?;
+    pack(input.u8()?, input.i32()?)?;
 
-    let mut lists = Vec::with_capacity(points);
-    for node_lists in raw_lists {
-        let mut resolved = Vec::with_capacity(node_lists.len());
-        for mut list in node_lists {
-            list.sort_by(|a, b| {
-                a.distance
-                    .total_cmp(&b.distance)
-                    .then(a.origin.cmp(&b.origin))
-            });
-            resolved.push(
-                list.iter()
-                    .map(|n| node_of(n.layer, n.rank))
-                    .collect::<io::Result<Vec<u32>>>()?,
-            );
-        }
-        lists.push(resolved);
-    }
     // Same rule as for a graph copied from memory: the first point of the top layer.
     let entry = layer_start
         .windows(2)
+        .enumerate()
         .rev()
-        .find(|w| w[1] > w[0])
-        .map(|w| w[0] as u32);
-    Ok(GraphPart {
-        origins,
-        links: Links::new(lists.into_iter(), entry),
-    })
+        .find(|(_, w)| w[1] > w[0])
+        .map(|(layer, _)| (layer as u32) << RANK_BITS);
+    let mut links = builder.finish(entry);
+    let resolved = links.map_nodes(|packed| {
+        let layer = (packed >> RANK_BITS) as usize;
+        let rank = (packed & ((1 << RANK_BITS) - 1)) as usize;
+        let (start, end) = (*layer_start.get(layer)?, *layer_start.get(layer + 1)?);
+        let node = start + rank;
+        (node < end).then_some(node as u32)
+    });
+    if !resolved {
+        return Err(malformed("neighbour beyond its layer"));
+    }
+    Ok(GraphPart { origins, links })
 }
 
 fn read_data(input: &mut Fields, dim: usize, points: usize) -> io::Result<(Vectors, Vec<ImageId>)> {
@@ -325,15 +317,13 @@ fn read_data(input: &mut Fields, dim: usize, points: usize) -> io::Result<(Vecto
     }
     let mut vectors = Vectors::with_capacity(dim, points);
     let mut origins = Vec::with_capacity(points);
-    let mut row = vec![0u8; dim * 4];
     for _ in 0..points {
         input.magic(MAGIC_DATA, "a vector")?;
         origins.push(input.u64()?);
-        if input.size()? != row.len() {
+        if input.size()? != dim * 4 {
             return Err(malformed("vector of the wrong length"));
         }
-        input.input.read_exact(&mut row)?;
-        vectors.push_ne_bytes(&row);
+        vectors.push_ne_bytes_from(|bytes| input.input.read_exact(bytes))?;
     }
     Ok((vectors, origins))
 }

@@ -17,7 +17,6 @@ use std::sync::{Arc, PoisonError, RwLock, RwLockReadGuard};
 
 use hnsw_rs::anndists::dist::distances::Distance;
 use hnsw_rs::prelude::{AnnT, Hnsw, HnswIo, Point, PointId};
-use rayon::prelude::*;
 use serde::{Deserialize, Serialize};
 
 use crate::compact::{self, Links, Vectors};
@@ -212,7 +211,7 @@ impl Graph {
         })
     }
 
-    pub fn len(&self) -> usize {
+    pub(crate) fn len(&self) -> usize {
         self.image_ids.len()
     }
 
@@ -327,6 +326,9 @@ impl Graph {
     /// hnsw_rs' layers in compact form. Each list is ordered by the distance hnsw_rs
     /// recorded, then by id, exactly as when read from a dump, so a reopened store
     /// answers exactly as before.
+    ///
+    /// Runs on the calling thread: it holds the links' write lock, and a rayon task
+    /// stolen meanwhile could be a search waiting for that same lock.
     fn copy_links(&self) -> Links {
         let builder = self
             .builder
@@ -351,7 +353,7 @@ impl Graph {
             }
             let entry = node_at.last().and_then(|top| top.first().copied());
             let per_point: Vec<(u32, Vec<Vec<u32>>)> = points
-                .par_iter()
+                .iter()
                 .map(|point| {
                     let level = usize::from(point.get_point_id().0);
                     let lists = point

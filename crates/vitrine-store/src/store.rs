@@ -146,21 +146,21 @@ impl Store {
             index_was_loaded: false,
         };
         store.roots = store.read_roots()?;
-        let live = store.live_ids()?;
-        store.live_count = live.len();
-
-        let loaded = match &store.manifest {
-            Some(manifest) => {
-                match Graph::load(&graph_dir, manifest, &params, store.fingerprint.dim) {
-                    Ok(graph) => Some(graph),
-                    Err(failure) => {
+        // Listing the live ids (a scan of sled) and reading the dump are independent.
+        let (live, loaded) = rayon::join(
+            || store.live_ids(),
+            || {
+                let manifest = store.manifest.as_ref()?;
+                let dim = store.fingerprint.dim;
+                Graph::load(&graph_dir, manifest, &params, dim)
+                    .inspect_err(|failure| {
                         warn!(store = %dir.display(), %failure, "rebuilding the hnsw index");
-                        None
-                    }
-                }
-            }
-            None => None,
-        };
+                    })
+                    .ok()
+            },
+        );
+        let live = live?;
+        store.live_count = live.len();
         let loaded = loaded.filter(|graph| {
             let dead = graph
                 .image_ids()

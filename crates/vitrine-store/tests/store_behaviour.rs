@@ -9,6 +9,7 @@ use std::path::Path;
 
 use common::synthetic::{exact_top_k, recall_at_k, ClusteredSource};
 use common::{fingerprint, populated_store, record};
+use rayon::prelude::*;
 use vitrine_store::{ChangeSet, FileError, ImageId, Store, StoreError, Upsert};
 
 const DIM: usize = 32;
@@ -79,6 +80,24 @@ fn remove(store: &mut Store, ids: &[ImageId]) {
         .expect("remove");
 }
 
+/// Commits rows `rows` of `data` as images `rows` (records from `record`); returns
+/// their ids.
+fn commit_rows(store: &mut Store, data: &[f32], rows: std::ops::Range<usize>) -> Vec<ImageId> {
+    let upserts = rows
+        .map(|i| Upsert {
+            replaces: None,
+            record: record(i),
+            embedding: data[i * DIM..(i + 1) * DIM].to_vec(),
+        })
+        .collect();
+    store
+        .commit(ChangeSet {
+            upserts,
+            ..ChangeSet::default()
+        })
+        .expect("commit")
+}
+
 fn copy_dir(from: &Path, to: &Path) {
     fs::create_dir_all(to).expect("create copy");
     for entry in fs::read_dir(from).expect("list") {
@@ -146,21 +165,7 @@ fn commits_after_the_last_save_are_searchable_after_reopen() {
     let (mut store, ids) = populated_store(dir.path(), &data[..1_000 * DIM], DIM);
     store.save_index().unwrap();
     let mut all_ids = ids;
-    let upserts = (1_000..2_000)
-        .map(|i| Upsert {
-            replaces: None,
-            record: record(i),
-            embedding: data[i * DIM..(i + 1) * DIM].to_vec(),
-        })
-        .collect();
-    all_ids.extend(
-        store
-            .commit(ChangeSet {
-                upserts,
-                ..ChangeSet::default()
-            })
-            .unwrap(),
-    );
+    all_ids.extend(commit_rows(&mut store, &data, 1_000..2_000));
     drop(store); // no save: the graph on disk lacks the second half
     let store = Store::open(dir.path()).unwrap();
     assert!(store.index_was_loaded());
@@ -520,7 +525,7 @@ fn model_mismatch_names_both_models() {
         Ok(_) => panic!("a different model must be refused"),
     };
     let message = error.to_string();
-    assert!(matches!(error, StoreError::ModelMismatch { .. }));
+    assert!(matches!(error, StoreError::ModelMismatch { .. }), "{message}");
     assert!(
         message.contains("test-vit-small (weights 01234567…, cls, dim 32)"),
         "{message}"
@@ -598,21 +603,7 @@ fn commits_after_reopening_extend_the_loaded_graph() {
 
     let mut store = Store::open(dir.path()).unwrap();
     assert!(store.index_was_loaded());
-    let upserts = (1_500..2_000)
-        .map(|i| Upsert {
-            replaces: None,
-            record: record(i),
-            embedding: data[i * DIM..(i + 1) * DIM].to_vec(),
-        })
-        .collect();
-    ids.extend(
-        store
-            .commit(ChangeSet {
-                upserts,
-                ..ChangeSet::default()
-            })
-            .unwrap(),
-    );
+    ids.extend(commit_rows(&mut store, &data, 1_500..2_000));
     assert!(store.index_was_loaded(), "extended, not rebuilt");
     assert_matches_exact(&store, &data, &ids, &HashSet::new(), &queries);
     store.save_index().unwrap();
@@ -637,21 +628,7 @@ fn dump_lost_after_opening_is_rebuilt_on_the_next_commit() {
     for name in dump_files(dir.path()) {
         fs::remove_file(dir.path().join("hnsw").join(name)).unwrap();
     }
-    let upserts = (1_800..2_000)
-        .map(|i| Upsert {
-            replaces: None,
-            record: record(i),
-            embedding: data[i * DIM..(i + 1) * DIM].to_vec(),
-        })
-        .collect();
-    ids.extend(
-        store
-            .commit(ChangeSet {
-                upserts,
-                ..ChangeSet::default()
-            })
-            .unwrap(),
-    );
+    ids.extend(commit_rows(&mut store, &data, 1_800..2_000));
     assert!(!store.index_was_loaded(), "rebuilt from the database");
     assert_matches_exact(&store, &data, &ids, &HashSet::new(), &queries);
     store.save_index().unwrap();
@@ -689,25 +666,14 @@ fn filter_accepting_few_images_returns_all_of_them_in_order() {
 }
 
 /// The first searches after a commit copy the graph into its search form; threads
-/// racing to do so must all get the same answers.
+/// racing to do so must all get the same answers, and rayon tasks (which may run
+/// other tasks while they wait) must not block each other.
 #[test]
 fn concurrent_searches_after_a_commit_agree() {
     let (data, queries) = dataset(2_000);
     let dir = tempfile::tempdir().unwrap();
     let (mut store, _) = populated_store(dir.path(), &data[..1_000 * DIM], DIM);
-    let upserts = (1_000..2_000)
-        .map(|i| Upsert {
-            replaces: None,
-            record: record(i),
-            embedding: data[i * DIM..(i + 1) * DIM].to_vec(),
-        })
-        .collect();
-    store
-        .commit(ChangeSet {
-            upserts,
-            ..ChangeSet::default()
-        })
-        .unwrap();
+    commit_rows(&mut store, &data, 1_000..1_500);
     let answers: Vec<Vec<Vec<(ImageId, f32)>>> = std::thread::scope(|scope| {
         let workers: Vec<_> = (0..4)
             .map(|_| scope.spawn(|| search_all(&store, &queries)))
@@ -718,6 +684,13 @@ fn concurrent_searches_after_a_commit_agree() {
     for answer in answers {
         assert_eq!(answer, sequential);
     }
+
+    commit_rows(&mut store, &data, 1_500..2_000);
+    let from_tasks: Vec<Vec<(ImageId, f32)>> = queries
+        .par_chunks_exact(DIM)
+        .map(|q| store.search(q, K, None).expect("search"))
+        .collect();
+    assert_eq!(from_tasks, search_all(&store, &queries));
 }
 
 /// A filter may itself search the store (a nested search on the same thread).
