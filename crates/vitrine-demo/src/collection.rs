@@ -343,7 +343,7 @@ pub fn build() -> Result<Collection> {
         let pixels = image::load_from_memory(&entries[original_index].bytes)
             .context("decoding a png to store it again")?
             .to_rgb8();
-        let bytes = encode_png(&pixels, PngSettings::SmallestFile)?;
+        let bytes = encode_png(&pixels, PngSettings::PaethFilter)?;
         entries.push(Entry::image(
             Some(original.split),
             Some(original.label),

@@ -38,16 +38,20 @@ pub fn encode_jpeg(image: &RgbImage, quality: u8) -> Result<Vec<u8>> {
 }
 
 /// The two PNG settings used for pixel-identical pairs: same pixels, different byte streams.
+///
+/// Both compress with the `png` crate's own fdeflate path: its zlib levels go through flate2,
+/// whose backend (miniz_oxide or zlib-rs) depends on which features other crates of the
+/// build enable, and the backends write different bytes.
 #[derive(Clone, Copy)]
 pub enum PngSettings {
-    Standard,
-    SmallestFile,
+    AdaptiveFilter,
+    PaethFilter,
 }
 
 pub fn encode_png(image: &RgbImage, settings: PngSettings) -> Result<Vec<u8>> {
     let (compression, filter) = match settings {
-        PngSettings::Standard => (CompressionType::Default, FilterType::Adaptive),
-        PngSettings::SmallestFile => (CompressionType::Best, FilterType::Paeth),
+        PngSettings::AdaptiveFilter => (CompressionType::Fast, FilterType::Adaptive),
+        PngSettings::PaethFilter => (CompressionType::Fast, FilterType::Paeth),
     };
     let mut bytes = Vec::new();
     PngEncoder::new_with_quality(&mut bytes, compression, filter)
@@ -64,7 +68,7 @@ pub fn encode_png(image: &RgbImage, settings: PngSettings) -> Result<Vec<u8>> {
 pub fn encode(image: &RgbImage, format: Format) -> Result<Vec<u8>> {
     match format {
         Format::Jpeg => encode_jpeg(image, CATALOGUE_JPEG_QUALITY),
-        Format::Png => encode_png(image, PngSettings::Standard),
+        Format::Png => encode_png(image, PngSettings::AdaptiveFilter),
     }
 }
 
