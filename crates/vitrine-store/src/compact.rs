@@ -12,6 +12,13 @@
 //! layers (Algorithm 5), then a beam search of width `ef` on layer 0 (Algorithm 2),
 //! where nodes that are not accepted (removed images, filters) are still traversed but
 //! never returned, and the beam keeps going until it holds `ef` accepted nodes.
+//!
+//! One departure: on layer 0 the beam also follows a node's links on its upper layers.
+//! hnsw_rs trims a full layer 0 list by distance alone, so the long links its selection
+//! heuristic chose are the first to go, while the sparser upper layers keep theirs.
+//! Every node reached is still a real node ranked by its exact dot product. Measured on
+//! 100,000 noisy clustered vectors (`hnsw_bench`, 100 centres): recall@10 at ef 128 went
+//! from 0.94 to 0.99.
 
 use std::cell::Cell;
 use std::cmp::{Ordering, Reverse};
@@ -502,9 +509,11 @@ fn search_with(
             break;
         }
         scratch.unvisited.clear();
-        for &node in links.neighbours(current.node, 0) {
-            if scratch.visit(node) {
-                scratch.unvisited.push(node);
+        for layer in 0..=links.level(current.node) {
+            for &node in links.neighbours(current.node, layer) {
+                if scratch.visit(node) {
+                    scratch.unvisited.push(node);
+                }
             }
         }
         // Start every vector's first line loading, then load each vector fully a few
