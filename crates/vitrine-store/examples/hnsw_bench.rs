@@ -104,11 +104,10 @@ fn run_vitrine(data: &[f32], queries: &[f32], truth: &[Vec<usize>], params: &Hns
         .enumerate()
         .map(|(id, row)| (id as ImageId, row))
         .collect();
-    let accept_all = |_: ImageId| true;
     let started = Instant::now();
     let graph = Graph::build(params, DIM, &items);
     // The first search copies hnsw_rs' layers into the compact form: part of the build.
-    graph.search(&queries[..DIM], K, &accept_all);
+    graph.search(&queries[..DIM], K, None);
     let build_s = started.elapsed().as_secs_f64();
 
     let sweep = EF_SWEEP
@@ -121,7 +120,7 @@ fn run_vitrine(data: &[f32], queries: &[f32], truth: &[Vec<usize>], params: &Hns
                 found = queries
                     .chunks_exact(DIM)
                     .map(|q| {
-                        let hits = graph.search(q, ef.max(K), &accept_all);
+                        let hits = graph.search(q, ef.max(K), None);
                         hits.iter().take(K).map(|(id, _)| *id as usize).collect()
                     })
                     .collect::<Vec<Vec<usize>>>();

@@ -283,13 +283,13 @@ impl Graph {
         Ok(())
     }
 
-    /// Up to `ef` nearest nodes not marked removed and accepted by `accept`, as
-    /// (id, cosine similarity), most similar first (ties by id).
+    /// Up to `ef` nearest nodes not marked removed and accepted by `filter` (if any),
+    /// as (id, cosine similarity), most similar first (ties by id).
     pub fn search(
         &self,
         query: &[f32],
         ef: usize,
-        accept: &dyn Fn(ImageId) -> bool,
+        filter: Option<&dyn Fn(ImageId) -> bool>,
     ) -> Vec<(ImageId, f32)> {
         if self.image_ids.is_empty() || ef == 0 || query.len() != self.vectors.dim() {
             return Vec::new();
@@ -299,7 +299,9 @@ impl Graph {
         let query = self.vectors.query(query);
         let mut hits: Vec<(ImageId, f32)> =
             compact::search(&self.vectors, links, query.padded(0), ef, |node| {
-                !self.removed[node as usize] && accept(self.image_ids[node as usize])
+                // Most searches have neither removals nor a filter: skip both lookups.
+                let removed = self.removed_count > 0 && self.removed[node as usize];
+                !removed && filter.is_none_or(|accept| accept(self.image_ids[node as usize]))
             })
             .into_iter()
             .map(|(similarity, node)| (self.image_ids[node as usize], similarity))

@@ -161,30 +161,25 @@ impl Store {
         );
         let live = live?;
         store.live_count = live.len();
-        let loaded = loaded.filter(|graph| {
-            let dead = graph
+        let loaded = loaded.and_then(|mut graph| {
+            let dead: Vec<ImageId> = graph
                 .image_ids()
                 .iter()
                 .filter(|id| !live.contains(id))
-                .count();
-            let too_many = dead as f64 > MAX_DEAD_FRACTION * graph.len() as f64;
-            if too_many {
-                info!(store = %dir.display(), dead, nodes = graph.len(),
+                .copied()
+                .collect();
+            if dead.len() as f64 > MAX_DEAD_FRACTION * graph.len() as f64 {
+                info!(store = %dir.display(), dead = dead.len(), nodes = graph.len(),
                       "rebuilding the hnsw index: too many removed images");
+                return None;
             }
-            !too_many
+            for id in dead {
+                graph.mark_removed(id);
+            }
+            Some(graph)
         });
         match loaded {
-            Some(mut graph) => {
-                let dead: Vec<ImageId> = graph
-                    .image_ids()
-                    .iter()
-                    .filter(|id| !live.contains(id))
-                    .copied()
-                    .collect();
-                for id in dead {
-                    graph.mark_removed(id);
-                }
+            Some(graph) => {
                 let missing: Vec<ImageId> = live
                     .iter()
                     .filter(|id| !graph.contains(**id))
@@ -492,10 +487,9 @@ impl Store {
         if k == 0 || self.graph.len() == 0 {
             return Ok(Vec::new());
         }
-        let accept = |id: ImageId| filter.is_none_or(|accept| accept(id));
         let candidates = self
             .graph
-            .search(&query, self.params.ef_search.max(k), &accept);
+            .search(&query, self.params.ef_search.max(k), filter);
         let mut hits = Vec::with_capacity(k);
         for (id, similarity) in candidates {
             if !self

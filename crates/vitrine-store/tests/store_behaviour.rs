@@ -525,7 +525,10 @@ fn model_mismatch_names_both_models() {
         Ok(_) => panic!("a different model must be refused"),
     };
     let message = error.to_string();
-    assert!(matches!(error, StoreError::ModelMismatch { .. }), "{message}");
+    assert!(
+        matches!(error, StoreError::ModelMismatch { .. }),
+        "{message}"
+    );
     assert!(
         message.contains("test-vit-small (weights 01234567…, cls, dim 32)"),
         "{message}"
