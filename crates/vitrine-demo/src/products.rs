@@ -257,7 +257,10 @@ impl Glaze {
                 frequency,
             } => {
                 let boundary = level
-                    + amplitude * (around * frequency + self.seed as f32 * 1e-3).sin_portable().abs()
+                    + amplitude
+                        * (around * frequency + self.seed as f32 * 1e-3)
+                            .sin_portable()
+                            .abs()
                     + amplitude * (variation - 0.5);
                 colour = mix(
                     colour,
@@ -605,7 +608,10 @@ impl Weave {
         if t < self.braid_rim {
             // A braided rim: diagonal plaits.
             let plait = frac((around + 1.0) * self.stakes * 1.5 + t / self.braid_rim);
-            return scale(self.strand, 0.6 + 0.45 * (plait * PI).sin_portable() + wobble);
+            return scale(
+                self.strand,
+                0.6 + 0.45 * (plait * PI).sin_portable() + wobble,
+            );
         }
         let column = (around + 1.0) * 0.5 * self.stakes;
         let row = t * self.rows;
@@ -880,12 +886,16 @@ impl Cloth {
                 if tassel > 0.5 {
                     return None;
                 }
-                return Some((scale(colour, 0.7 + 0.5 * (tassel * TAU).sin_portable()), 1.0));
+                return Some((
+                    scale(colour, 0.7 + 0.5 * (tassel * TAU).sin_portable()),
+                    1.0,
+                ));
             }
             // Folds turn the cloth towards or away from the light; knit ribs give fine texture.
             let tilt_to_light =
                 (point.slope / (1.0 + point.slope * point.slope).sqrt()) * light.x.signum();
-            let folds = 0.1 * (TAU * point.along / self.fold_length + 2.0 * point.across).sin_portable();
+            let folds =
+                0.1 * (TAU * point.along / self.fold_length + 2.0 * point.across).sin_portable();
             let ribs = 0.07
                 * (TAU * point.along / self.knit_pitch).sin_portable()
                 * (point.across * band.half_width * 1.3).sin_portable().abs();
@@ -1014,7 +1024,8 @@ impl Leaf {
                 let fraction = along / self.length;
                 let across =
                     (px * -dir_y + py * dir_x) - self.bend * self.length * fraction * fraction;
-                let half_width = 0.5 * self.width * (PI * fraction).sin_portable().powf_portable(0.7);
+                let half_width =
+                    0.5 * self.width * (PI * fraction).sin_portable().powf_portable(0.7);
                 if across.abs() > half_width + 0.5 {
                     return None;
                 }

@@ -33,7 +33,9 @@ impl Light {
         let (hx, hz) = (self.x, self.z + 1.0);
         let norm = (hx * hx + hz * hz).sqrt();
         let nz = (1.0 - nx * nx).max(0.0).sqrt();
-        ((nx * hx + nz * hz) / norm).max(0.0).powf_portable(shininess)
+        ((nx * hx + nz * hz) / norm)
+            .max(0.0)
+            .powf_portable(shininess)
     }
 }
 
@@ -135,7 +137,8 @@ pub fn paint_backdrop(canvas: &mut Canvas, rng: &mut ChaCha8Rng, light: Light) -
         let on_table = smoothstep(-edge_softness, edge_softness, y - horizon);
         let base = mix(wall, table, on_table);
         let (dx, dy) = (x - spot.0, y - spot.1);
-        let glow = 0.8 + 0.32 * (-(dx * dx + dy * dy) / (2.0 * spot_radius * spot_radius)).exp_portable();
+        let glow =
+            0.8 + 0.32 * (-(dx * dx + dy * dy) / (2.0 * spot_radius * spot_radius)).exp_portable();
         Some((scale(base, glow), 1.0))
     });
     horizon

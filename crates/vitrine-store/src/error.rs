@@ -40,6 +40,15 @@ pub enum StoreError {
         oldest_readable: u32,
     },
 
+    #[error(
+        "store at {path} is open in another process (waited {waited:?} for its lock); \
+         stop that process or use another store"
+    )]
+    InUse {
+        path: PathBuf,
+        waited: std::time::Duration,
+    },
+
     #[error("database error in store at {path}: {source}")]
     Database {
         path: PathBuf,

@@ -1,6 +1,7 @@
 use std::collections::HashSet;
 use std::fs;
 use std::path::{Path, PathBuf};
+use std::time::{Duration, Instant};
 
 use serde::de::DeserializeOwned;
 use serde::Serialize;
@@ -682,11 +683,30 @@ fn normalised(
     Ok(vector)
 }
 
+/// How long opening waits for sled's file lock. A store dropped a moment ago keeps
+/// the lock until sled's background flusher thread has exited, so an immediate
+/// reopen in the same process (a restart, a test) would otherwise fail at random.
+const LOCK_WAIT: Duration = Duration::from_secs(5);
+
 fn open_db(dir: &Path) -> Result<sled::Db, StoreError> {
-    sled::Config::new()
-        .path(dir.join(DB_DIR))
-        .open()
-        .map_err(database_error(dir))
+    let started = Instant::now();
+    loop {
+        match sled::Config::new().path(dir.join(DB_DIR)).open() {
+            // sled reports a held lock only as an `Other` i/o error with this message.
+            Err(sled::Error::Io(error))
+                if error.to_string().starts_with("could not acquire lock") =>
+            {
+                if started.elapsed() >= LOCK_WAIT {
+                    return Err(StoreError::InUse {
+                        path: dir.to_path_buf(),
+                        waited: LOCK_WAIT,
+                    });
+                }
+                std::thread::sleep(Duration::from_millis(20));
+            }
+            result => return result.map_err(database_error(dir)),
+        }
+    }
 }
 
 fn database_error(dir: &Path) -> impl Fn(sled::Error) -> StoreError + '_ {

@@ -554,6 +554,31 @@ fn opening_a_missing_store_fails_cleanly() {
 }
 
 #[test]
+fn reopening_right_after_dropping_succeeds() {
+    // sled releases its file lock only when its flusher thread exits, a moment after
+    // the drop; opening must wait for that instead of failing at random.
+    let dir = tempfile::tempdir().unwrap();
+    for _ in 0..20 {
+        drop(Store::create_or_open(dir.path(), &fingerprint(DIM)).unwrap());
+    }
+}
+
+#[test]
+fn a_store_held_open_is_reported_in_use() {
+    let dir = tempfile::tempdir().unwrap();
+    let _held = Store::create_or_open(dir.path(), &fingerprint(DIM)).unwrap();
+    let error = match Store::open(dir.path()) {
+        Err(error) => error,
+        Ok(_) => panic!("a second open of a held store must fail"),
+    };
+    assert!(matches!(error, StoreError::InUse { .. }), "{error}");
+    assert!(
+        error.to_string().contains("open in another process"),
+        "{error}"
+    );
+}
+
+#[test]
 fn empty_store_saves_and_searches() {
     let dir = tempfile::tempdir().unwrap();
     let mut store = Store::create_or_open(dir.path(), &fingerprint(DIM)).unwrap();
