@@ -4,6 +4,7 @@ use std::collections::BTreeMap;
 use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
+use std::sync::Arc;
 
 use anyhow::{bail, Context, Result};
 use clap::{Args, Parser, Subcommand};
@@ -337,11 +338,15 @@ impl Session {
         if !(-1.0..=1.0).contains(&near_duplicate_threshold) {
             bail!("--threshold must be a cosine similarity between -1 and 1");
         }
+        let candidate_threshold = self.settings.queries.candidate_threshold;
+        if !(-1.0..=1.0).contains(&candidate_threshold) {
+            bail!("queries.candidate_threshold must be a cosine similarity between -1 and 1");
+        }
         Ok(DuplicateOptions {
             near_duplicate_threshold,
             neighbours_per_image: self.settings.queries.neighbours_per_image,
-            verify: !threshold.no_verify,
-            ..DuplicateOptions::default()
+            verify: self.settings.queries.verify && !threshold.no_verify,
+            candidate_threshold,
         })
     }
 
@@ -393,10 +398,9 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
             let store = ctx.open_store()?;
             let catalog = Catalog::load(&store)?;
             let options = ctx.duplicate_options(&threshold)?;
-            let encoder = ctx.verification_encoder(&store, &options);
-            let verifier = encoder
-                .as_ref()
-                .map(|e| PairVerifier::new(e, VerifyOptions::default()));
+            let verifier = ctx
+                .verification_encoder(&store, &options)
+                .map(|e| PairVerifier::new(Arc::new(e), VerifyOptions::default()));
             let report = find_duplicates(&store, &catalog, &options, verifier.as_ref())?;
             emit(&DuplicateTable(report), &output)?;
         }
@@ -414,10 +418,9 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
                     .unwrap_or_else(|| ctx.settings.queries.reference_split.clone()),
                 duplicates: ctx.duplicate_options(&threshold)?,
             };
-            let encoder = ctx.verification_encoder(&store, &options.duplicates);
-            let verifier = encoder
-                .as_ref()
-                .map(|e| PairVerifier::new(e, VerifyOptions::default()));
+            let verifier = ctx
+                .verification_encoder(&store, &options.duplicates)
+                .map(|e| PairVerifier::new(Arc::new(e), VerifyOptions::default()));
             let report = find_leaks_verified(&store, &catalog, &options, verifier.as_ref())?;
             emit(&LeakTable(report), &output)?;
         }

@@ -65,6 +65,10 @@ impl Default for IndexSettings {
 #[serde(default, deny_unknown_fields)]
 pub struct QuerySettings {
     pub near_duplicate_threshold: f32,
+    /// Confirm near pairs with the finer check.
+    pub verify: bool,
+    /// With verification, the cosine from which pairs are checked.
+    pub candidate_threshold: f32,
     pub neighbours_per_image: usize,
     pub reference_split: String,
 }
@@ -73,6 +77,8 @@ impl Default for QuerySettings {
     fn default() -> Self {
         Self {
             near_duplicate_threshold: vitrine_engine::duplicates::DEFAULT_NEAR_DUPLICATE_THRESHOLD,
+            verify: true,
+            candidate_threshold: vitrine_engine::duplicates::DEFAULT_CANDIDATE_THRESHOLD,
             neighbours_per_image: 10,
             reference_split: "train".into(),
         }

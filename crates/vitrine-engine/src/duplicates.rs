@@ -13,8 +13,7 @@
 //! below it. Pairs whose files cannot be read are judged on the threshold
 //! alone, and the result says so.
 
-use std::collections::{BTreeSet, HashMap};
-use std::path::PathBuf;
+use std::collections::{BTreeMap, HashMap};
 
 use rayon::prelude::*;
 use serde::Serialize;
@@ -23,7 +22,7 @@ use vitrine_store::{ImageId, Store};
 use crate::analytics::grouping::{group_by_similarity, SimilarityEdge};
 use crate::catalog::{Catalog, ImageRef};
 use crate::error::EngineError;
-use crate::verify::{PairCheck, PairVerifier};
+use crate::verify::{PairCheck, PairVerifier, VerifiedFile};
 
 /// How strongly two images are the same picture.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize)]
@@ -45,7 +44,8 @@ pub struct DuplicateOptions {
     pub neighbours_per_image: usize,
     /// Confirm near candidates with the finer check when a verifier is given.
     pub verify: bool,
-    /// With verification, pairs from this cosine up are candidates.
+    /// With verification, pairs from this cosine up are candidates (and only
+    /// confirmed ones are accepted); without, `near_duplicate_threshold` rules.
     pub candidate_threshold: f32,
 }
 
@@ -73,6 +73,9 @@ pub const DEFAULT_NEAR_DUPLICATE_THRESHOLD: f32 = 0.875;
 /// same measurement, candidate floors of 0.5, 0.6 and 0.7 gave identical
 /// results; 0.6 keeps the number of checks down.
 pub const DEFAULT_CANDIDATE_THRESHOLD: f32 = 0.60;
+
+/// Images whose verification evidence (about 0.4 MB each) is held at once.
+const EVIDENCE_PER_ROUND: usize = 512;
 
 /// How a near pair was judged.
 #[derive(Clone, Copy, Debug, PartialEq, Serialize)]
@@ -199,12 +202,12 @@ struct Candidate {
     similarity: f32,
 }
 
-/// The cosine from which neighbours are candidates.
+/// The cosine from which neighbours are candidates. With verification it is
+/// the candidate threshold alone, even above the near-duplicate threshold: a
+/// reviewer raising it asks for fewer, closer pairs.
 fn candidate_floor(options: &DuplicateOptions, verifier: Option<&PairVerifier>) -> f32 {
     if options.verify && verifier.is_some() {
-        options
-            .candidate_threshold
-            .min(options.near_duplicate_threshold)
+        options.candidate_threshold
     } else {
         options.near_duplicate_threshold
     }
@@ -238,20 +241,46 @@ fn judge(
         }
     };
     summary.applied = true;
-    let path_of = |row: usize| catalog.absolute_path(catalog.ids[row]);
-    let rows: BTreeSet<usize> = candidates
+    let file_of = |row: usize| {
+        Some(VerifiedFile {
+            path: catalog.absolute_path(catalog.ids[row])?,
+            content_hash: catalog.records[row].content_hash,
+        })
+    };
+    // Pairs not judged before are checked in rounds whose files' evidence fits
+    // the verifier's budget, so memory stays bounded on any collection; the
+    // candidates come ordered by their first image, so a round shares files.
+    let pending: Vec<(VerifiedFile, VerifiedFile)> = candidates
         .iter()
-        .flat_map(|c| [c.first, c.second])
+        .filter_map(|c| Some((file_of(c.first)?, file_of(c.second)?)))
+        .filter(|(a, b)| verifier.remembered(a, b).is_none())
         .collect();
-    let paths: Vec<PathBuf> = rows.into_iter().filter_map(path_of).collect();
-    verifier.prepare(&paths)?;
+    let mut rest = pending.as_slice();
+    while !rest.is_empty() {
+        let mut files = BTreeMap::new();
+        let mut taken = 0;
+        for (a, b) in rest {
+            if files.len() + 2 > EVIDENCE_PER_ROUND && taken > 0 {
+                break;
+            }
+            files.insert(a.content_hash, a.clone());
+            files.insert(b.content_hash, b.clone());
+            taken += 1;
+        }
+        let (round, later) = rest.split_at(taken);
+        verifier.prepare(&files.into_values().collect::<Vec<_>>())?;
+        // Failures (an unreadable file) are not remembered: judged below.
+        round.par_iter().for_each(|(a, b)| {
+            let _ = verifier.check(a, b);
+        });
+        verifier.release_evidence();
+        rest = later;
+    }
     let checks: Vec<Option<PairCheck>> = candidates
         .par_iter()
-        .map(|c| {
-            let (a, b) = (path_of(c.first)?, path_of(c.second)?);
-            verifier.check(&a, &b).ok()
-        })
+        .map(|c| verifier.check(&file_of(c.first)?, &file_of(c.second)?).ok())
         .collect();
+    verifier.release_evidence();
     let mut verdicts = Vec::with_capacity(candidates.len());
     for (candidate, check) in candidates.iter().zip(checks) {
         let above = candidate.similarity >= threshold;

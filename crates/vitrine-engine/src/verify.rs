@@ -41,7 +41,7 @@
 //! per image involved in a candidate pair plus a small comparison per pair.
 
 use std::collections::HashMap;
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 use std::sync::{Arc, Mutex};
 
 use rand::{Rng, SeedableRng};
@@ -673,7 +673,24 @@ fn plane_residual(positions: &[[f32; 2]], values: impl Iterator<Item = f32>) -> 
 }
 
 /// Checks whether two images show the same picture.
+/// Checks a pair in both directions (each aligns one image onto the other,
+/// which is not exactly symmetric: a crop aligns better onto its original
+/// than the reverse, or the other way round near the borders) and keeps the
+/// better verdict, so a pair is confirmed when either alignment confirms it.
 pub fn compare(a: &ImageEvidence, b: &ImageEvidence, options: &VerifyOptions) -> PairCheck {
+    let forward = compare_one_way(a, b, options);
+    if forward.confirmed {
+        return forward;
+    }
+    let backward = compare_one_way(b, a, options);
+    if backward.confirmed || backward.score > forward.score {
+        backward
+    } else {
+        forward
+    }
+}
+
+fn compare_one_way(a: &ImageEvidence, b: &ImageEvidence, options: &VerifyOptions) -> PairCheck {
     let matches = mutual_nearest(a, b, options.min_token_similarity);
     let (score, detail, colour, inliers) = match fit_transform(a, b, &matches, options) {
         Some((fitted, inliers)) => {
@@ -703,42 +720,58 @@ pub fn compare(a: &ImageEvidence, b: &ImageEvidence, options: &VerifyOptions) ->
 /// Images per forward pass when preparing evidence.
 const PREPARE_BATCH: usize = 16;
 
-/// Verifies pairs of indexed files, keeping each file's evidence for reuse.
-pub struct PairVerifier<'a> {
-    encoder: &'a Encoder,
-    options: VerifyOptions,
-    decode: DecodeOptions,
-    cache: Mutex<HashMap<PathBuf, Arc<ImageEvidence>>>,
+/// A file to verify, named by its path and the hash of its bytes: evidence
+/// and verdicts are remembered by content, so a file that changes on disk is
+/// never judged on what it used to hold.
+#[derive(Clone, Debug)]
+pub struct VerifiedFile {
+    pub path: PathBuf,
+    pub content_hash: [u8; 32],
 }
 
-impl<'a> PairVerifier<'a> {
-    pub fn new(encoder: &'a Encoder, options: VerifyOptions) -> Self {
+/// Verifies pairs of indexed files.
+///
+/// Verdicts are remembered for the verifier's lifetime (a few bytes per pair),
+/// so a long-lived verifier answers repeated queries (another threshold, a new
+/// generation of a collection) without decoding again. Evidence (patch tokens,
+/// about 0.4 MB per image) is kept only until [`Self::release_evidence`].
+pub struct PairVerifier {
+    encoder: Arc<Encoder>,
+    options: VerifyOptions,
+    evidence: Mutex<HashMap<[u8; 32], Arc<ImageEvidence>>>,
+    verdicts: Mutex<HashMap<([u8; 32], [u8; 32]), PairCheck>>,
+}
+
+impl PairVerifier {
+    pub fn new(encoder: Arc<Encoder>, options: VerifyOptions) -> Self {
         Self {
             encoder,
             options,
-            decode: DecodeOptions::default(),
-            cache: Mutex::new(HashMap::new()),
+            evidence: Mutex::new(HashMap::new()),
+            verdicts: Mutex::new(HashMap::new()),
+        }
+    }
+
+    fn decode_options(&self) -> DecodeOptions {
+        DecodeOptions {
+            target_shorter_side: Some(self.encoder.spec().preprocess.resize_shorter),
+            ..DecodeOptions::default()
         }
     }
 
     /// Decodes, prepares and encodes a file once.
-    pub fn evidence(&self, path: &Path) -> Result<Arc<ImageEvidence>, EngineError> {
-        if let Some(found) = self.cached(path) {
+    fn evidence(&self, file: &VerifiedFile) -> Result<Arc<ImageEvidence>, EngineError> {
+        if let Some(found) = self.cached_evidence(file) {
             return Ok(found);
         }
-        let spec = &self.encoder.spec().preprocess;
-        let decode = DecodeOptions {
-            target_shorter_side: Some(spec.resize_shorter),
-            ..self.decode.clone()
-        };
-        let decoded = decode_path(path, &decode)?;
-        let prepared = preprocess(&decoded.rgb, spec)?;
-        let evidence = ImageEvidence::of_prepared(self.encoder, &[prepared])?
+        let decoded = decode_path(&file.path, &self.decode_options())?;
+        let prepared = preprocess(&decoded.rgb, &self.encoder.spec().preprocess)?;
+        let evidence = ImageEvidence::of_prepared(&self.encoder, &[prepared])?
             .pop()
             .map(|(_, evidence)| Arc::new(evidence))
             .ok_or_else(|| EngineError::InvalidArgument("encoder returned no output".into()))?;
-        if let Ok(mut cache) = self.cache.lock() {
-            cache.insert(path.to_path_buf(), Arc::clone(&evidence));
+        if let Ok(mut cache) = self.evidence.lock() {
+            cache.insert(file.content_hash, Arc::clone(&evidence));
         }
         Ok(evidence)
     }
@@ -746,42 +779,65 @@ impl<'a> PairVerifier<'a> {
     /// Computes the evidence of many files at once: parallel decoding,
     /// batched forward passes. Files that fail are left out (a later
     /// [`Self::check`] on them reports the error).
-    pub fn prepare(&self, paths: &[PathBuf]) -> Result<(), EngineError> {
+    pub fn prepare(&self, files: &[VerifiedFile]) -> Result<(), EngineError> {
         let spec = &self.encoder.spec().preprocess;
-        let decode = DecodeOptions {
-            target_shorter_side: Some(spec.resize_shorter),
-            ..self.decode.clone()
-        };
-        let missing: Vec<&PathBuf> = paths.iter().filter(|p| self.cached(p).is_none()).collect();
+        let decode = self.decode_options();
+        let missing: Vec<&VerifiedFile> = files
+            .iter()
+            .filter(|file| self.cached_evidence(file).is_none())
+            .collect();
         for chunk in missing.chunks(PREPARE_BATCH) {
-            let prepared: Vec<(&PathBuf, PreparedImage)> = chunk
+            let prepared: Vec<(&VerifiedFile, PreparedImage)> = chunk
                 .par_iter()
-                .filter_map(|path| {
-                    let decoded = decode_path(path, &decode).ok()?;
-                    Some((*path, preprocess(&decoded.rgb, spec).ok()?))
+                .filter_map(|file| {
+                    let decoded = decode_path(&file.path, &decode).ok()?;
+                    Some((*file, preprocess(&decoded.rgb, spec).ok()?))
                 })
                 .collect();
             let images: Vec<PreparedImage> = prepared.iter().map(|(_, p)| p.clone()).collect();
-            let evidence = ImageEvidence::of_prepared(self.encoder, &images)?;
-            if let Ok(mut cache) = self.cache.lock() {
-                for ((path, _), (_, found)) in prepared.into_iter().zip(evidence) {
-                    cache.insert(path.clone(), Arc::new(found));
+            let evidence = ImageEvidence::of_prepared(&self.encoder, &images)?;
+            if let Ok(mut cache) = self.evidence.lock() {
+                for ((file, _), (_, found)) in prepared.into_iter().zip(evidence) {
+                    cache.insert(file.content_hash, Arc::new(found));
                 }
             }
         }
         Ok(())
     }
 
-    fn cached(&self, path: &Path) -> Option<Arc<ImageEvidence>> {
-        self.cache.lock().ok()?.get(path).cloned()
+    fn cached_evidence(&self, file: &VerifiedFile) -> Option<Arc<ImageEvidence>> {
+        self.evidence.lock().ok()?.get(&file.content_hash).cloned()
     }
 
-    /// Checks two files against each other.
-    pub fn check(&self, a: &Path, b: &Path) -> Result<PairCheck, EngineError> {
+    /// The verdict on a pair judged before, in either order, if any.
+    pub fn remembered(&self, a: &VerifiedFile, b: &VerifiedFile) -> Option<PairCheck> {
+        let (a, b) = in_canonical_order(a, b);
+        self.verdicts
+            .lock()
+            .ok()?
+            .get(&(a.content_hash, b.content_hash))
+            .copied()
+    }
+
+    /// Drops the evidence kept so far; remembered verdicts stay.
+    pub fn release_evidence(&self) {
+        if let Ok(mut cache) = self.evidence.lock() {
+            cache.clear();
+        }
+    }
+
+    /// Checks two files against each other. The check is not exactly
+    /// symmetric (one image is aligned onto the other), so a pair is always
+    /// checked in one order: the verdict does not depend on who asks.
+    pub fn check(&self, a: &VerifiedFile, b: &VerifiedFile) -> Result<PairCheck, EngineError> {
+        if let Some(known) = self.remembered(a, b) {
+            return Ok(known);
+        }
+        let (a, b) = in_canonical_order(a, b);
         let check = compare(&*self.evidence(a)?, &*self.evidence(b)?, &self.options);
         tracing::debug!(
-            first = %a.display(),
-            second = %b.display(),
+            first = %a.path.display(),
+            second = %b.path.display(),
             structure = check.score,
             detail = check.detail,
             colour = check.colour,
@@ -790,7 +846,21 @@ impl<'a> PairVerifier<'a> {
             confirmed = check.confirmed,
             "pair verified"
         );
+        if let Ok(mut verdicts) = self.verdicts.lock() {
+            verdicts.insert((a.content_hash, b.content_hash), check);
+        }
         Ok(check)
+    }
+}
+
+fn in_canonical_order<'f>(
+    a: &'f VerifiedFile,
+    b: &'f VerifiedFile,
+) -> (&'f VerifiedFile, &'f VerifiedFile) {
+    if a.content_hash <= b.content_hash {
+        (a, b)
+    } else {
+        (b, a)
     }
 }
 

@@ -16,6 +16,7 @@
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 use std::process::Command;
+use std::sync::Arc;
 
 use anyhow::{bail, Context, Result};
 use vitrine_engine::calibrate::MILD_EDITS;
@@ -136,7 +137,7 @@ fn mild_copies_of_real_photos_are_found_and_distinct_photos_kept_apart() -> Resu
     let Some((python, model_dir)) = setup()? else {
         return Ok(());
     };
-    let encoder = Encoder::load(&model_dir)?;
+    let encoder = Arc::new(Encoder::load(&model_dir)?);
     let photos = photos(&python)?;
     let work = tempfile::tempdir()?;
     let folder = work.path().join("photos");
@@ -153,7 +154,7 @@ fn mild_copies_of_real_photos_are_found_and_distinct_photos_kept_apart() -> Resu
     assert_eq!(catalog.len(), photos.len() * (1 + MILD_EDITS.len()));
 
     let options = DuplicateOptions::default();
-    let verifier = PairVerifier::new(&encoder, VerifyOptions::default());
+    let verifier = PairVerifier::new(Arc::clone(&encoder), VerifyOptions::default());
     for (name, verifier) in [("cosine threshold", None), ("verified", Some(&verifier))] {
         let report = find_duplicates(&store, &catalog, &options, verifier)?;
         let (recall, mixed) = score(&report, photos.len());

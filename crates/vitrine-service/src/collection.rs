@@ -14,15 +14,17 @@
 
 use std::path::PathBuf;
 use std::sync::atomic::{AtomicU64, Ordering};
-use std::sync::Arc;
+use std::sync::{Arc, OnceLock};
 use std::time::Duration;
 
 use parking_lot::{Mutex, RwLock};
 use vitrine_engine::catalog::{dot, Catalog};
 use vitrine_engine::clusters::ClusterReport;
-use vitrine_engine::duplicates::{DuplicateGroup, LeakReport};
+use vitrine_engine::duplicates::{DuplicateReport, LeakReport};
 use vitrine_engine::labels::{LabelSuggestion, LabelSuspect};
 use vitrine_engine::neighbours::{nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter};
+use vitrine_engine::verify::{PairVerifier, VerifyOptions};
+use vitrine_model::encoder::Encoder;
 use vitrine_engine::EngineError;
 use vitrine_store::{FileError, ImageId, ImageRecord, ModelFingerprint, Store};
 
@@ -98,10 +100,14 @@ pub struct Collection {
     store: RwLock<Store>,
     snapshot: RwLock<Arc<Snapshot>>,
     generations: AtomicU64,
-    /// Duplicate groups by threshold (as bits).
-    pub duplicates: Memo<u32, Vec<DuplicateGroup>>,
-    /// Leak reports by (evaluated splits, reference split, threshold bits).
-    pub leaks: Memo<(Vec<String>, String, u32), LeakReport>,
+    /// Duplicate reports by (threshold bits, candidate threshold bits, verified).
+    pub duplicates: Memo<(u32, u32, bool), DuplicateReport>,
+    /// Leak reports by (evaluated splits, reference split, threshold bits,
+    /// candidate threshold bits, verified).
+    pub leaks: Memo<(Vec<String>, String, u32, u32, bool), LeakReport>,
+    /// Lives as long as the collection, so that pair verdicts outlast one
+    /// query: another threshold or a new generation re-checks only new pairs.
+    verifier: OnceLock<Arc<PairVerifier>>,
     /// Clusterings by (requested number of clusters, seed).
     pub clusters: Memo<(Option<usize>, u64), ClusterReport>,
     /// Label suggestions by (k, min_confidence bits).
@@ -122,10 +128,19 @@ impl Collection {
             generations: AtomicU64::new(0),
             duplicates: Memo::default(),
             leaks: Memo::default(),
+            verifier: OnceLock::new(),
             clusters: Memo::default(),
             label_suggestions: Memo::default(),
             label_suspects: Memo::default(),
         })
+    }
+
+    /// The collection's near-duplicate verifier, made with `encoder` on first use
+    /// (the service has one model, checked against the collection by the caller).
+    pub fn verifier(&self, encoder: Arc<Encoder>) -> Arc<PairVerifier> {
+        self.verifier
+            .get_or_init(|| Arc::new(PairVerifier::new(encoder, VerifyOptions::default())))
+            .clone()
     }
 
     /// The current snapshot; cheap.

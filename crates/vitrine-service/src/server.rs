@@ -158,6 +158,9 @@ impl Service {
         let settings = config.settings.clone();
         let ip = listen_address(&settings.bind, settings.effective_token().as_deref())?;
         let state = web::Data::new(AppState::new(config)?);
+        if settings.precompute {
+            api::analyses::precompute_reports(state.clone());
+        }
         let app_state = state.clone();
         let mut server = HttpServer::new(move || {
             let state = app_state.clone();

@@ -44,6 +44,9 @@ pub struct ServeSettings {
     pub workers: usize,
     /// On shutdown, in-flight requests get this long to finish.
     pub shutdown_timeout_s: u64,
+    /// At start, compute each collection's default duplicate and leak reports
+    /// in the background, so the first reader does not wait for verification.
+    pub precompute: bool,
 }
 
 impl Default for ServeSettings {
@@ -67,6 +70,7 @@ impl Default for ServeSettings {
             thumbnail_max_size: 512,
             workers: 0,
             shutdown_timeout_s: 30,
+            precompute: true,
         }
     }
 }

@@ -78,30 +78,42 @@
     }
   }
 
+  // A whole-collection answer can take longer than one request may (the first
+  // verified duplicate report decodes every candidate image); the service keeps
+  // computing it, so a read that timed out, or met an index job, is asked again.
+  const RETRIED_CODES = ['request_timeout', 'collection_busy'];
+  const MAX_RETRIES = 20;
+
   async function api(path, options = {}) {
-    let response;
-    try {
-      response = await fetch(API + path, {
-        method: options.method || 'GET',
-        body: options.body,
-        signal: options.signal,
-        headers: Object.assign({ Accept: 'application/json' }, options.headers || {}),
-      });
-    } catch (err) {
-      if (err.name === 'AbortError') throw err;
-      throw new ApiError(0, 'unreachable', 'The vitrine service did not answer. Is `vitrine serve` still running?');
-    }
-    const text = await response.text();
-    let data = null;
-    if (text) {
-      try { data = JSON.parse(text); } catch (_) { data = null; }
-    }
-    if (!response.ok) {
+    const method = options.method || 'GET';
+    for (let attempt = 0; ; attempt += 1) {
+      let response;
+      try {
+        response = await fetch(API + path, {
+          method,
+          body: options.body,
+          signal: options.signal,
+          headers: Object.assign({ Accept: 'application/json' }, options.headers || {}),
+        });
+      } catch (err) {
+        if (err.name === 'AbortError') throw err;
+        throw new ApiError(0, 'unreachable', 'The vitrine service did not answer. Is `vitrine serve` still running?');
+      }
+      const text = await response.text();
+      let data = null;
+      if (text) {
+        try { data = JSON.parse(text); } catch (_) { data = null; }
+      }
+      if (response.ok) return data;
       const error = (data && data.error) || {};
+      if (method === 'GET' && response.status === 503 && RETRIED_CODES.includes(error.code) && attempt < MAX_RETRIES) {
+        await new Promise((resolve) => setTimeout(resolve, 1000));
+        if (options.signal && options.signal.aborted) throw new DOMException('aborted', 'AbortError');
+        continue;
+      }
       throw new ApiError(response.status, error.code || `http_${response.status}`,
         error.message || response.statusText || 'The request failed.');
     }
-    return data;
   }
 
   function collectionPath(suffix) {
@@ -429,10 +441,10 @@
   }
 
   /** A similarity threshold slider that re-queries when the user settles on a value. */
-  function thresholdControl(requested, onSettle) {
+  function thresholdControl(requested, onSettle, { label = 'Similarity threshold', min = 0.7 } = {}) {
     const id = 'threshold';
-    const current = Math.min(1, Math.max(0.7, Number.isFinite(requested) ? requested : 0.9));
-    const input = h('input', { type: 'range', id, min: '0.70', max: '1', step: '0.005', value: current.toFixed(3) });
+    const current = Math.min(1, Math.max(min, Number.isFinite(requested) ? requested : 0.9));
+    const input = h('input', { type: 'range', id, min: min.toFixed(2), max: '1', step: '0.005', value: current.toFixed(3) });
     const output = h('output', { for: id }, current.toFixed(3));
     let timer = null;
     input.addEventListener('input', () => { output.textContent = Number(input.value).toFixed(3); });
@@ -441,8 +453,58 @@
       timer = setTimeout(() => onSettle(Number(input.value)), 250);
     });
     return h('div', { class: 'field' },
-      h('label', { for: id }, 'Similarity threshold'),
+      h('label', { for: id }, label),
       h('div', { class: 'threshold' }, input, output));
+  }
+
+  /**
+   * Near-pair settings shared by the duplicates and leakage views. While
+   * verifying (the default), the slider is the similarity from which pairs are
+   * checked and only confirmed pairs count; otherwise it is the threshold.
+   */
+  function nearSettings(params) {
+    const verify = params.get('verify') !== 'false';
+    const key = verify ? 'candidate_threshold' : 'threshold';
+    const requested = params.get(key);
+    return {
+      verify,
+      key,
+      requested: requested ? Number(requested) : undefined,
+      query: { verify: verify ? undefined : 'false', [key]: requested || undefined },
+    };
+  }
+
+  function nearControls(near, shown) {
+    const box = h('input', { type: 'checkbox', id: 'verify', checked: near.verify });
+    box.addEventListener('change', () => navigate(hrefWith({
+      verify: box.checked ? '' : 'false', threshold: '', candidate_threshold: '', page: 1,
+    })));
+    const slider = near.verify
+      ? { label: 'Check pairs from similarity', min: 0.5 }
+      : { label: 'Similarity threshold', min: 0.7 };
+    return [
+      h('div', { class: 'field' },
+        h('span', {}, 'Near pairs'),
+        h('label', { for: 'verify', class: 'inline-check' }, box, 'verify each pair')),
+      thresholdControl(shown, (v) => navigate(hrefWith({ [near.key]: v.toFixed(3), page: 1 })), slider),
+    ];
+  }
+
+  /** One sentence on how near pairs were judged in an answer. */
+  function verificationText(verification) {
+    if (!verification) return '';
+    if (!verification.applied) {
+      return verification.note ? ` Near pairs judged on cosine similarity alone: ${verification.note}.` : ' Near pairs judged on cosine similarity alone.';
+    }
+    return ` Near pairs verified: ${verification.confirmed} of ${verification.candidate_pairs} candidate pairs confirmed` +
+      (verification.rejected_above_threshold ? `, ${verification.rejected_above_threshold} look-alikes above the threshold rejected` : '') +
+      (verification.unavailable ? `, ${verification.unavailable} not checkable (file unreadable)` : '') + '.';
+  }
+
+  /** Text for how one near link was judged. */
+  function checkText(check) {
+    if (!check) return '';
+    return check.status === 'confirmed' ? `verified ${formatScore(check.score)}` : 'cosine only';
   }
 
   function selectField(id, labelText, options, current, onChange) {
@@ -709,15 +771,15 @@
   async function renderDuplicates(ctx) {
     const { params, root } = ctx;
     const { page, perPage } = pageParams(params, 50);
-    const threshold = params.get('threshold');
+    const near = nearSettings(params);
     const slot = h('div', {});
-    const summary = h('p', { class: 'lede', 'aria-live': 'polite' });
+    const summary = h('p', { class: 'lede', 'aria-live': 'polite', dataset: { testid: 'duplicates-summary' } });
     let shownGroups = [];
-    let shownThreshold = threshold ? Number(threshold) : undefined;
+    let shownValue = near.requested;
 
     const exportButtons = [
-      h('button', { type: 'button', dataset: { export: 'csv' }, onclick: () => exportGroups('csv', shownGroups, shownThreshold) }, 'Export CSV'),
-      h('button', { type: 'button', dataset: { export: 'json' }, onclick: () => exportGroups('json', shownGroups, shownThreshold) }, 'Export JSON'),
+      h('button', { type: 'button', dataset: { export: 'csv' }, onclick: () => exportGroups('csv', shownGroups, shownValue) }, 'Export CSV'),
+      h('button', { type: 'button', dataset: { export: 'json' }, onclick: () => exportGroups('json', shownGroups, shownValue) }, 'Export JSON'),
     ];
     exportButtons.forEach((b) => { b.disabled = true; });
     const toolbarSlot = h('div', { class: 'toolbar', role: 'group', 'aria-label': 'Duplicate settings' });
@@ -728,39 +790,40 @@
 
     const buildToolbar = (value) => {
       toolbarSlot.replaceChildren(
-        thresholdControl(value, (v) => navigate(hrefWith({ threshold: v.toFixed(3), page: 1 }))),
+        ...nearControls(near, value),
         perPageSelect(perPage, [25, 50, 100, 200, 500]),
         h('span', { class: 'spacer' }),
         ...exportButtons);
     };
-    buildToolbar(shownThreshold !== undefined ? shownThreshold : 0.9);
+    buildToolbar(shownValue !== undefined ? shownValue : 0.9);
 
-    await fill(ctx, slot, 'Finding duplicate groups…', async () => {
-      const data = await api(collectionPath('/duplicates') + queryString({ threshold, page, per_page: perPage }), { signal: ctx.signal });
+    await fill(ctx, slot, near.verify ? 'Finding and verifying duplicate groups…' : 'Finding duplicate groups…', async () => {
+      const data = await api(collectionPath('/duplicates') + queryString({ ...near.query, page, per_page: perPage }), { signal: ctx.signal });
       const groups = listOf(data, 'groups');
       const total = pick(data, 'total');
-      const served = pick(data, 'threshold', 'near_duplicate_threshold');
-      if (shownThreshold === undefined && typeof served === 'number') {
-        shownThreshold = served;
+      const served = pick(data, near.key);
+      if (shownValue === undefined && typeof served === 'number') {
+        shownValue = served;
         buildToolbar(served);
       }
       shownGroups = groups;
       exportButtons.forEach((b) => { b.disabled = !groups.length; });
       const count = typeof total === 'number' ? total : groups.length;
       const tierCounts = TIERS.map((t) => [t, groups.filter((g) => g.tier === t).length]).filter(([, n]) => n);
+      const bound = near.verify ? 'checked from similarity' : 'at similarity';
       summary.textContent = `${count} group${count === 1 ? '' : 's'}` +
-        (shownThreshold !== undefined ? ` at similarity ≥ ${shownThreshold.toFixed(3)}` : '') +
+        (shownValue !== undefined ? ` ${bound} ≥ ${shownValue.toFixed(3)}` : '') +
         (tierCounts.length ? ` · this page: ${tierCounts.map(([t, n]) => `${n} ${TIER_TEXT[t]}`).join(', ')}` : '') +
-        '. Use j / k to step through the groups.';
+        '.' + verificationText(data.verification) + ' Use j / k to step through the groups.';
       announce(`${count} duplicate groups.`);
       if (!groups.length) {
-        return emptyState('No duplicate groups at this threshold.',
-          'Lower the similarity threshold to include looser near-duplicates.');
+        return emptyState('No duplicate groups at this setting.',
+          near.verify ? 'Lower the similarity from which pairs are checked, or turn verification off.' : 'Lower the similarity threshold to include looser near-duplicates.');
       }
       const offset = (page - 1) * perPage;
       const list = h('ol', {
         class: 'review-list tiles',
-        dataset: { testid: 'groups', threshold: shownThreshold !== undefined ? shownThreshold.toFixed(3) : '' },
+        dataset: { testid: 'groups', threshold: shownValue !== undefined ? shownValue.toFixed(3) : '' },
         'aria-label': 'Duplicate groups',
       });
       const fragment = document.createDocumentFragment();
@@ -783,11 +846,11 @@
         keeper: Boolean(m.keeper),
         tier: m.keeper ? null : m.tier,
         score: m.keeper ? undefined : pick(m, 'similarity'),
-        meta: [m.width && m.height ? `${m.width}×${m.height}` : '', formatBytes(m.byte_size)].filter(Boolean).join(' · '),
+        meta: [m.width && m.height ? `${m.width}×${m.height}` : '', formatBytes(m.byte_size), checkText(m.check)].filter(Boolean).join(' · '),
       }))));
   }
 
-  const CSV_COLUMNS = ['group', 'group_tier', 'id', 'path', 'root', 'split', 'label', 'tier', 'similarity', 'keeper', 'width', 'height', 'byte_size'];
+  const CSV_COLUMNS = ['group', 'group_tier', 'id', 'path', 'root', 'split', 'label', 'tier', 'similarity', 'check', 'check_score', 'keeper', 'width', 'height', 'byte_size'];
 
   function csvField(value) {
     let text = value === undefined || value === null ? '' : String(value);
@@ -800,14 +863,15 @@
     const stamp = new Date().toISOString().replace(/[:]/g, '-').replace(/\..*/, '');
     const name = `${state.collection}-duplicates-${stamp}`;
     if (format === 'json') {
-      const body = JSON.stringify({ collection: state.collection, threshold, groups }, null, 2);
+      const body = JSON.stringify({ collection: state.collection, similarity_setting: threshold, groups }, null, 2);
       download(`${name}.json`, 'application/json', body);
     } else {
       const rows = [CSV_COLUMNS.join(',')];
       groups.forEach((group, index) => {
         for (const member of listOf(group, 'members').map(imageOf)) {
           rows.push([index + 1, group.tier, member.id, member.path, member.root, member.split, member.label,
-            member.tier, member.similarity, member.keeper, member.width, member.height, member.byte_size].map(csvField).join(','));
+            member.tier, member.similarity, member.check && member.check.status, member.check && member.check.score,
+            member.keeper, member.width, member.height, member.byte_size].map(csvField).join(','));
         }
       });
       download(`${name}.csv`, 'text/csv', `${rows.join('\r\n')}\r\n`);
@@ -832,7 +896,7 @@
     const splits = splitNames();
     const against = params.get('against') || (splits.includes('train') ? 'train' : splits[0] || 'train');
     const chosen = params.getAll('split').filter((s) => s !== against);
-    const threshold = params.get('threshold');
+    const near = nearSettings(params);
 
     const checks = splits.filter((s) => s !== against).map((s) => {
       const id = `eval-${s}`;
@@ -852,7 +916,7 @@
       h('fieldset', { class: 'field' }, h('legend', {}, 'Evaluated splits'), h('div', { class: 'checks' }, checks.length ? checks : h('span', {}, 'no other split'))),
       selectField('against', 'Reference split', splits.map((s) => [s, s]), against,
         (value) => navigate(hrefWith({ against: value, split: [], page: 1 }))),
-      thresholdControl(threshold ? Number(threshold) : 0.9, (v) => navigate(hrefWith({ threshold: v.toFixed(3), page: 1 }))),
+      ...nearControls(near, near.requested !== undefined ? near.requested : (near.verify ? 0.6 : 0.9)),
       perPageSelect(perPage, [25, 50, 100, 200]));
     const summarySlot = h('div', {});
     const listSlot = h('div', {});
@@ -862,14 +926,15 @@
 
     await fill(ctx, listSlot, 'Comparing splits…', async () => {
       const data = await api(collectionPath('/leaks') + queryString({
-        split: chosen, against, threshold, page, per_page: perPage,
+        split: chosen, against, ...near.query, page, per_page: perPage,
       }), { signal: ctx.signal });
       const reference = pick(data, 'reference_split') || against;
       const summary = listOf(data, 'summary');
-      summarySlot.replaceChildren(leakSummary(summary, reference));
+      summarySlot.replaceChildren(...[leakSummary(summary, reference)].filter(Boolean));
       const leaks = listOf(data, 'leaks', 'pairs');
       const total = pick(data, 'total');
       announce(`${typeof total === 'number' ? total : leaks.length} leaked images.`);
+      summarySlot.append(h('p', { class: 'lede' }, verificationText(data.verification).trim()));
       if (!leaks.length) {
         return emptyState(`No image of the evaluated splits has a copy in ${reference}.`,
           'At a lower threshold looser near-duplicates are reported too.');
@@ -917,7 +982,7 @@
           h('span', { class: 'arrow', 'aria-hidden': 'true' }, '⟷'),
           h('span', { class: 'score' }, h('span', { class: 'visually-hidden' }, 'similarity '), formatScore(leak.similarity)),
           tierChip(leak.tier),
-          h('span', { class: 'arrow' }, 'cosine similarity')),
+          h('span', { class: 'arrow' }, ['cosine similarity', checkText(leak.check)].filter(Boolean).join(' · '))),
         h('div', {}, h('p', { class: 'side-label' }, `Reference (${counterpart.split || reference})`), imageCard(counterpart))));
   }
 

@@ -127,6 +127,12 @@ fn every_endpoint_over_http() -> Result<()> {
             .expect("the copy is in a duplicate group");
         assert!(group["members"].as_array().into_iter().flatten().any(|m| m["id"] == original_id));
         assert!(duplicates["total"].as_u64() >= Some(1));
+        // The model is loaded, so near pairs went through the finer check;
+        // asked not to, the answer says so.
+        assert_eq!(duplicates["verification"]["applied"], true, "{duplicates}");
+        let unverified = get(&api("/duplicates?verify=false&threshold=0.95")).await?.json();
+        assert_eq!(unverified["verification"]["applied"], false, "{unverified}");
+        assert_eq!(unverified["threshold"], 0.95);
 
         // Leaks: the val copy leaks from train.
         let leaks = get(&api("/leaks?split=val&against=train")).await?.json();
@@ -373,6 +379,20 @@ fn bad_requests_get_json_errors_and_change_nothing() -> Result<()> {
                     Body::Empty,
                     400,
                     "threshold_out_of_range",
+                ),
+                (
+                    "candidate threshold out of range",
+                    client.get(api("/duplicates?candidate_threshold=-3")),
+                    Body::Empty,
+                    400,
+                    "threshold_out_of_range",
+                ),
+                (
+                    "verify not a boolean",
+                    client.get(api("/leaks?verify=maybe")),
+                    Body::Empty,
+                    400,
+                    "invalid_query",
                 ),
                 (
                     "threshold NaN",

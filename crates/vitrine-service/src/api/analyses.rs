@@ -1,15 +1,20 @@
 //! Duplicate groups and leakage between splits.
 
 use actix_web::{get, web, HttpResponse};
+use std::sync::Arc;
+
 use serde::{Deserialize, Serialize};
 use utoipa::{IntoParams, ToSchema};
 use vitrine_engine::catalog::ImageRef;
 use vitrine_engine::duplicates::{
-    find_duplicate_groups, find_leaks, DuplicateGroup, DuplicateOptions, DuplicateTier, Leak,
-    LeakOptions, SplitLeakSummary,
+    find_duplicates, find_leaks_verified, DuplicateGroup, DuplicateOptions, DuplicateReport,
+    DuplicateTier, Leak, LeakOptions, LeakReport, SplitLeakSummary, Verification,
+    VerificationSummary,
 };
+use vitrine_engine::verify::PairVerifier;
 
 use super::{blocking, PageWindow, State};
+use crate::collection::{Collection, Snapshot};
 use crate::error::{ApiError, ErrorBody};
 use crate::state::{AppState, BUSY_WAIT};
 
@@ -58,6 +63,72 @@ impl From<DuplicateTier> for Tier {
     }
 }
 
+/// How a near pair was accepted.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct PairJudgement {
+    /// `confirmed`: the finer check (patch correspondences and aligned
+    /// pixels) confirmed it. `threshold_only`: accepted on the cosine
+    /// threshold alone (verification off, no model loaded, or a file could
+    /// not be read).
+    pub status: JudgementStatus,
+    /// For confirmed pairs: the aligned pixel correlation, up to 1.
+    pub score: Option<f32>,
+}
+
+#[derive(Debug, Serialize, ToSchema)]
+#[serde(rename_all = "snake_case")]
+pub enum JudgementStatus {
+    Confirmed,
+    ThresholdOnly,
+}
+
+impl From<Verification> for PairJudgement {
+    fn from(verification: Verification) -> Self {
+        match verification {
+            Verification::Confirmed { score } => Self {
+                status: JudgementStatus::Confirmed,
+                score: Some(score),
+            },
+            Verification::ThresholdOnly => Self {
+                status: JudgementStatus::ThresholdOnly,
+                score: None,
+            },
+        }
+    }
+}
+
+/// What near-pair verification did in this answer.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct VerificationBody {
+    /// Whether near pairs went through the finer check.
+    pub applied: bool,
+    /// Why it was not applied, or only in part.
+    pub note: Option<String>,
+    /// Pairs from the candidate cosine up (with verification) or from the threshold up.
+    pub candidate_pairs: usize,
+    pub confirmed: usize,
+    /// Confirmed pairs whose cosine was below the threshold.
+    pub recovered_below_threshold: usize,
+    /// Pairs at or above the threshold that the check rejected.
+    pub rejected_above_threshold: usize,
+    /// Pairs with an unreadable file, judged on the threshold alone.
+    pub unavailable: usize,
+}
+
+impl From<&VerificationSummary> for VerificationBody {
+    fn from(summary: &VerificationSummary) -> Self {
+        Self {
+            applied: summary.applied,
+            note: summary.note.clone(),
+            candidate_pairs: summary.candidate_pairs,
+            confirmed: summary.confirmed,
+            recovered_below_threshold: summary.recovered_below_threshold,
+            rejected_above_threshold: summary.rejected_above_threshold,
+            unavailable: summary.unavailable,
+        }
+    }
+}
+
 #[derive(Debug, Serialize, ToSchema)]
 pub struct GroupMember {
     pub id: u64,
@@ -71,6 +142,8 @@ pub struct GroupMember {
     pub similarity: f32,
     /// The suggested image to keep (nothing is deleted).
     pub keeper: bool,
+    /// For near-tier members: how the near link that brought it in was judged.
+    pub check: Option<PairJudgement>,
     pub width: u32,
     pub height: u32,
     pub byte_size: u64,
@@ -100,6 +173,7 @@ impl From<&DuplicateGroup> for DuplicateGroupBody {
                     tier: m.tier.into(),
                     similarity: m.similarity,
                     keeper: m.keeper,
+                    check: m.verification.map(PairJudgement::from),
                     width: m.width,
                     height: m.height,
                     byte_size: m.byte_size,
@@ -114,6 +188,13 @@ impl From<&DuplicateGroup> for DuplicateGroupBody {
 pub struct DuplicateParams {
     /// Cosine similarity at or above which images are near-duplicates.
     pub threshold: Option<f32>,
+    /// Confirm near pairs with the finer check (default true; needs the
+    /// collection's model). The first verified answer of a collection decodes
+    /// every image in a candidate pair; later ones reuse the verdicts.
+    pub verify: Option<bool>,
+    /// With verification: the cosine similarity from which pairs are checked
+    /// (confirmed pairs are accepted even below `threshold`).
+    pub candidate_threshold: Option<f32>,
     pub page: Option<usize>,
     pub per_page: Option<usize>,
 }
@@ -121,6 +202,8 @@ pub struct DuplicateParams {
 #[derive(Debug, Serialize, ToSchema)]
 pub struct DuplicatesPage {
     pub threshold: f32,
+    pub candidate_threshold: f32,
+    pub verification: VerificationBody,
     /// Largest groups first.
     pub groups: Vec<DuplicateGroupBody>,
     /// Groups in all pages.
@@ -129,21 +212,139 @@ pub struct DuplicatesPage {
     pub per_page: usize,
 }
 
-fn duplicate_options(
-    state: &AppState,
+/// Which near pairs to accept, as a request asks.
+struct NearQuery {
     threshold: Option<f32>,
-) -> Result<DuplicateOptions, ApiError> {
-    let threshold = threshold.unwrap_or(state.duplicates.near_duplicate_threshold);
-    if !(-1.0..=1.0).contains(&threshold) {
-        return Err(ApiError::bad_request(
-            "threshold_out_of_range",
-            "threshold is a cosine similarity between -1 and 1",
-        ));
-    }
+    candidate_threshold: Option<f32>,
+    verify: Option<bool>,
+}
+
+fn duplicate_options(state: &AppState, query: NearQuery) -> Result<DuplicateOptions, ApiError> {
+    let defaults = &state.duplicates;
+    let cosine = |name: &'static str, value: Option<f32>, default: f32| {
+        let value = value.unwrap_or(default);
+        if (-1.0..=1.0).contains(&value) {
+            Ok(value)
+        } else {
+            Err(ApiError::bad_request(
+                "threshold_out_of_range",
+                format!("{name} is a cosine similarity between -1 and 1"),
+            ))
+        }
+    };
     Ok(DuplicateOptions {
-        near_duplicate_threshold: threshold,
-        ..state.duplicates.clone()
+        near_duplicate_threshold: cosine(
+            "threshold",
+            query.threshold,
+            defaults.near_duplicate_threshold,
+        )?,
+        candidate_threshold: cosine(
+            "candidate_threshold",
+            query.candidate_threshold,
+            defaults.candidate_threshold,
+        )?,
+        verify: query.verify.unwrap_or(defaults.verify),
+        ..defaults.clone()
     })
+}
+
+/// The collection's verifier when `options` ask for verification and the
+/// loaded model made the collection's embeddings; otherwise the engine judges
+/// on the threshold and says why in the answer's verification note.
+fn verifier_for(
+    state: &AppState,
+    collection: &Collection,
+    snapshot: &Snapshot,
+    options: &DuplicateOptions,
+) -> Option<Arc<PairVerifier>> {
+    if !options.verify {
+        return None;
+    }
+    let encoder = state.encoder_for(&snapshot.fingerprint).ok()?;
+    Some(collection.verifier(encoder))
+}
+
+/// The collection's duplicate report for `options`, memoised per generation.
+/// Blocks: run it off the async threads.
+pub(crate) fn duplicate_report(
+    state: &AppState,
+    collection: &Collection,
+    options: &DuplicateOptions,
+) -> Result<Arc<DuplicateReport>, ApiError> {
+    collection.with_store(BUSY_WAIT, |store, snapshot| {
+        let key = (
+            options.near_duplicate_threshold.to_bits(),
+            options.candidate_threshold.to_bits(),
+            options.verify,
+        );
+        collection
+            .duplicates
+            .get_or_try(snapshot.generation, key, || {
+                let verifier = verifier_for(state, collection, snapshot, options);
+                find_duplicates(store, &snapshot.catalog, options, verifier.as_deref())
+            })
+            .map_err(ApiError::from)
+    })
+}
+
+/// The collection's leak report for `options`, memoised per generation.
+/// Blocks: run it off the async threads.
+pub(crate) fn leak_report(
+    state: &AppState,
+    collection: &Collection,
+    options: &LeakOptions,
+) -> Result<Arc<LeakReport>, ApiError> {
+    let near = &options.duplicates;
+    let key = (
+        options.evaluated_splits.clone(),
+        options.reference_split.clone(),
+        near.near_duplicate_threshold.to_bits(),
+        near.candidate_threshold.to_bits(),
+        near.verify,
+    );
+    collection.with_store(BUSY_WAIT, |store, snapshot| {
+        collection
+            .leaks
+            .get_or_try(snapshot.generation, key, || {
+                let verifier = verifier_for(state, collection, snapshot, near);
+                find_leaks_verified(store, &snapshot.catalog, options, verifier.as_deref())
+            })
+            .map_err(ApiError::from)
+    })
+}
+
+/// Computes each collection's default duplicate and leak reports on a
+/// background thread, so that the first reader (often the page) finds them
+/// ready instead of waiting for verification to decode every candidate image.
+pub fn precompute_reports(state: web::Data<AppState>) {
+    let spawned = std::thread::Builder::new()
+        .name("vitrine-precompute".into())
+        .spawn(move || {
+            for collection in state.collections.values() {
+                let started = std::time::Instant::now();
+                let leak_options = LeakOptions {
+                    evaluated_splits: Vec::new(),
+                    reference_split: state.reference_split.clone(),
+                    duplicates: state.duplicates.clone(),
+                };
+                let outcome = duplicate_report(&state, collection, &state.duplicates)
+                    .and_then(|_| leak_report(&state, collection, &leak_options));
+                match outcome {
+                    Ok(_) => tracing::info!(
+                        collection = %collection.name,
+                        seconds = started.elapsed().as_secs_f64(),
+                        "duplicate and leak reports ready"
+                    ),
+                    Err(err) => tracing::warn!(
+                        collection = %collection.name,
+                        "could not precompute reports: {err}"
+                    ),
+                }
+            }
+        });
+    if let Err(err) = spawned {
+        tracing::warn!("could not start precomputing reports: {err}");
+    }
 }
 
 /// Groups of identical and near-duplicate images (a report: nothing is deleted).
@@ -165,22 +366,23 @@ pub async fn duplicates(
     query: web::Query<DuplicateParams>,
 ) -> Result<HttpResponse, ApiError> {
     let collection = state.collection(&path)?;
-    let options = duplicate_options(&state, query.threshold)?;
+    let options = duplicate_options(
+        &state,
+        NearQuery {
+            threshold: query.threshold,
+            candidate_threshold: query.candidate_threshold,
+            verify: query.verify,
+        },
+    )?;
     let window = PageWindow::new(query.page, query.per_page, &state.settings)?;
     let threshold = options.near_duplicate_threshold;
-    let groups = blocking(move || {
-        collection.with_store(BUSY_WAIT, |store, snapshot| {
-            collection
-                .duplicates
-                .get_or_try(snapshot.generation, threshold.to_bits(), || {
-                    find_duplicate_groups(store, &snapshot.catalog, &options)
-                })
-                .map_err(ApiError::from)
-        })
-    })
-    .await?;
+    let candidate_threshold = options.candidate_threshold;
+    let report = blocking(move || duplicate_report(&state, &collection, &options)).await?;
+    let groups = &report.groups;
     Ok(HttpResponse::Ok().json(DuplicatesPage {
         threshold,
+        candidate_threshold,
+        verification: (&report.verification).into(),
         groups: groups[window.range(groups.len())]
             .iter()
             .map(DuplicateGroupBody::from)
@@ -194,6 +396,10 @@ pub async fn duplicates(
 #[derive(Debug, Deserialize, IntoParams)]
 #[into_params(parameter_in = Query)]
 pub struct LeakParams {
+    /// Confirm near pairs with the finer check (default true; needs the collection's model).
+    pub verify: Option<bool>,
+    /// With verification: the cosine similarity from which pairs are checked.
+    pub candidate_threshold: Option<f32>,
     /// Splits to check, comma-separated (default: every split but the reference).
     pub split: Option<String>,
     /// The reference split others are checked against (default from the configuration, usually `train`).
@@ -235,6 +441,8 @@ pub struct LeakBody {
     pub counterpart: ImageBrief,
     pub tier: Tier,
     pub similarity: f32,
+    /// For near-tier leaks: how the pair was judged.
+    pub check: Option<PairJudgement>,
 }
 
 impl From<&Leak> for LeakBody {
@@ -248,6 +456,7 @@ impl From<&Leak> for LeakBody {
             counterpart: (&leak.counterpart).into(),
             tier: leak.tier.into(),
             similarity: leak.similarity,
+            check: leak.verification.map(PairJudgement::from),
         }
     }
 }
@@ -256,6 +465,8 @@ impl From<&Leak> for LeakBody {
 pub struct LeaksPage {
     pub reference_split: String,
     pub threshold: f32,
+    pub candidate_threshold: f32,
+    pub verification: VerificationBody,
     pub summary: Vec<SplitLeaks>,
     pub leaks: Vec<LeakBody>,
     /// Leaks in all pages.
@@ -283,7 +494,14 @@ pub async fn leaks(
     query: web::Query<LeakParams>,
 ) -> Result<HttpResponse, ApiError> {
     let collection = state.collection(&path)?;
-    let near = duplicate_options(&state, query.threshold)?;
+    let near = duplicate_options(
+        &state,
+        NearQuery {
+            threshold: query.threshold,
+            candidate_threshold: query.candidate_threshold,
+            verify: query.verify,
+        },
+    )?;
     let window = PageWindow::new(query.page, query.per_page, &state.settings)?;
     let query = query.into_inner();
     let mut evaluated_splits: Vec<String> = query
@@ -303,25 +521,13 @@ pub async fn leaks(
         duplicates: near,
     };
     let threshold = options.duplicates.near_duplicate_threshold;
-    let key = (
-        options.evaluated_splits.clone(),
-        options.reference_split.clone(),
-        threshold.to_bits(),
-    );
-    let report = blocking(move || {
-        collection.with_store(BUSY_WAIT, |store, snapshot| {
-            collection
-                .leaks
-                .get_or_try(snapshot.generation, key, || {
-                    find_leaks(store, &snapshot.catalog, &options)
-                })
-                .map_err(ApiError::from)
-        })
-    })
-    .await?;
+    let candidate_threshold = options.duplicates.candidate_threshold;
+    let report = blocking(move || leak_report(&state, &collection, &options)).await?;
     Ok(HttpResponse::Ok().json(LeaksPage {
         reference_split: report.reference_split.clone(),
         threshold,
+        candidate_threshold,
+        verification: (&report.verification).into(),
         summary: report.summary.iter().map(SplitLeaks::from).collect(),
         leaks: report.leaks[window.range(report.leaks.len())]
             .iter()

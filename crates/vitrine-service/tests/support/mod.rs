@@ -170,10 +170,7 @@ impl Fixture {
             collections: vec![("shop".into(), self.store.clone())],
             model: Model::Loaded(encoder()),
             index: index_options(),
-            duplicates: DuplicateOptions {
-                verify: false,
-                ..DuplicateOptions::default()
-            },
+            duplicates: DuplicateOptions::default(),
             reference_split: "train".into(),
         }
     }
