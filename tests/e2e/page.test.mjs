@@ -35,6 +35,23 @@ let page;
 const requests = [];
 const pageErrors = [];
 
+/**
+ * Waits until the service has a whole-collection answer ready. The first
+ * verified report decodes every image of a candidate pair (the service starts
+ * on it when it starts; the page shows its loading state meanwhile).
+ */
+async function untilAnswered(suffix, limitMs = 300000) {
+  const collections = await (await fetch(`${server.url}/api/v1/collections`)).json();
+  const name = encodeURIComponent(collections.collections[0].name);
+  const started = Date.now();
+  for (;;) {
+    const response = await fetch(`${server.url}/api/v1/collections/${name}${suffix}`);
+    if (response.ok) return;
+    if (Date.now() - started > limitMs) throw new Error(`${suffix} still unanswered after ${limitMs} ms: ${response.status}`);
+    await new Promise((resolve) => setTimeout(resolve, 1000));
+  }
+}
+
 /** Every planted file mapped to its set of copies of one picture (union-find over the ground truth's links). */
 function plantedSets() {
   const parent = new Map();
@@ -121,6 +138,7 @@ test('search: an uploaded original finds its planted near-duplicate first', asyn
 });
 
 test('duplicates: a planted exact-copy group is shown with one suggested keeper', async () => {
+  await untilAnswered('/duplicates?per_page=1');
   await page.goto(`${server.url}/#/duplicates?per_page=500`);
   await page.waitForSelector('[data-testid="groups"] .group');
   const groups = await page.$$eval('[data-testid="groups"] .group', (els) => els.map((el) => ({
@@ -184,6 +202,7 @@ test('duplicates: the threshold control re-queries the groups', async () => {
 });
 
 test('leakage: a planted leak is shown as a pair with the per-split summary', async () => {
+  await untilAnswered('/leaks?per_page=1');
   await page.goto(`${server.url}/#/leakage?per_page=200`);
   await page.waitForSelector('[data-testid="leaks"] .review-item');
   const pairs = await page.$$eval('[data-testid="leaks"] .review-item', (els) => els.map((el) => [el.dataset.path, el.dataset.counterpart]));
