@@ -31,6 +31,7 @@ function syntheticGroups(count, images) {
           tier: m === 0 ? 'bytes' : tier,
           similarity: m === 0 ? 1 : 0.99 - m * 0.01,
           keeper: m === 0,
+          check: m > 0 && tier === 'near' ? { status: 'confirmed', score: 0.9 } : null,
         };
       }),
     };

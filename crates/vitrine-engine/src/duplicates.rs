@@ -74,7 +74,8 @@ pub const DEFAULT_NEAR_DUPLICATE_THRESHOLD: f32 = 0.875;
 /// results; 0.6 keeps the number of checks down.
 pub const DEFAULT_CANDIDATE_THRESHOLD: f32 = 0.60;
 
-/// Images whose verification evidence (about 0.4 MB each) is held at once.
+/// Images whose verification evidence (about 0.4 MB each) a verifier holds at
+/// most; on a small collection it is all of them, kept for the next query.
 const EVIDENCE_PER_ROUND: usize = 512;
 
 /// How a near pair was judged.
@@ -268,19 +269,19 @@ fn judge(
             taken += 1;
         }
         let (round, later) = rest.split_at(taken);
-        verifier.prepare(&files.into_values().collect::<Vec<_>>())?;
+        let files: Vec<VerifiedFile> = files.into_values().collect();
+        verifier.make_room(&files, EVIDENCE_PER_ROUND);
+        verifier.prepare(&files)?;
         // Failures (an unreadable file) are not remembered: judged below.
         round.par_iter().for_each(|(a, b)| {
             let _ = verifier.check(a, b);
         });
-        verifier.release_evidence();
         rest = later;
     }
     let checks: Vec<Option<PairCheck>> = candidates
         .par_iter()
         .map(|c| verifier.check(&file_of(c.first)?, &file_of(c.second)?).ok())
         .collect();
-    verifier.release_evidence();
     let mut verdicts = Vec::with_capacity(candidates.len());
     for (candidate, check) in candidates.iter().zip(checks) {
         let above = candidate.similarity >= threshold;

@@ -734,7 +734,8 @@ pub struct VerifiedFile {
 /// Verdicts are remembered for the verifier's lifetime (a few bytes per pair),
 /// so a long-lived verifier answers repeated queries (another threshold, a new
 /// generation of a collection) without decoding again. Evidence (patch tokens,
-/// about 0.4 MB per image) is kept only until [`Self::release_evidence`].
+/// about 0.4 MB per image) is kept within the bound its callers give to
+/// [`Self::make_room`].
 pub struct PairVerifier {
     encoder: Arc<Encoder>,
     options: VerifyOptions,
@@ -819,10 +820,18 @@ impl PairVerifier {
             .copied()
     }
 
-    /// Drops the evidence kept so far; remembered verdicts stay.
-    pub fn release_evidence(&self) {
+    /// Makes room for the evidence of `files` within `capacity` images: when
+    /// they would not fit beside what is kept, everything kept is dropped
+    /// (remembered verdicts stay).
+    pub fn make_room(&self, files: &[VerifiedFile], capacity: usize) {
         if let Ok(mut cache) = self.evidence.lock() {
-            cache.clear();
+            let new = files
+                .iter()
+                .filter(|f| !cache.contains_key(&f.content_hash))
+                .count();
+            if cache.len() + new > capacity {
+                cache.clear();
+            }
         }
     }
 
