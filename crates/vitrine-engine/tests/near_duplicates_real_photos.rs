@@ -23,7 +23,7 @@ use vitrine_engine::calibrate::MILD_EDITS;
 use vitrine_engine::catalog::Catalog;
 use vitrine_engine::duplicates::{find_duplicates, DuplicateOptions, DuplicateReport};
 use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions, NoProgress};
-use vitrine_engine::verify::{PairVerifier, VerifyOptions};
+use vitrine_engine::verify::{PairVerifier, VerifiedFile, VerifyOptions};
 use vitrine_imaging::{decode_path, DecodeOptions};
 use vitrine_model::encoder::Encoder;
 use vitrine_model::fetch::{default_model_root, DEFAULT_WHEEL};
@@ -173,6 +173,44 @@ fn mild_copies_of_real_photos_are_found_and_distinct_photos_kept_apart() -> Resu
             "{name}: distinct photos grouped together: {mixed:?}"
         );
         assert_eq!(report.verification.applied, verifier.is_some(), "{name}");
+    }
+
+    // A verdict does not depend on which file is named first, nor on whether
+    // the verifier judged the pair before (fresh verifiers, both orders).
+    let file = |name: &str| -> Result<VerifiedFile> {
+        let id = catalog
+            .ids
+            .iter()
+            .copied()
+            .find(|&id| {
+                catalog
+                    .record(id)
+                    .is_some_and(|r| r.rel_path.ends_with(name))
+            })
+            .with_context(|| format!("{name} is indexed"))?;
+        Ok(VerifiedFile {
+            path: catalog
+                .absolute_path(id)
+                .context("indexed file has a path")?,
+            content_hash: catalog.record(id).context("record")?.content_hash,
+        })
+    };
+    let stem = photos[0]
+        .file_stem()
+        .context("photo name")?
+        .to_string_lossy();
+    let original = file(&format!("{stem}/original.png"))?;
+    for edit in MILD_EDITS {
+        let copy = file(&format!("{stem}/{}.png", edit.name()))?;
+        let forward = PairVerifier::new(Arc::clone(&encoder), VerifyOptions::default())
+            .check(&original, &copy)?;
+        let backward = PairVerifier::new(Arc::clone(&encoder), VerifyOptions::default())
+            .check(&copy, &original)?;
+        assert_eq!(forward, backward, "{stem} and its {} copy", edit.name());
+        assert_eq!(
+            verifier.remembered(&copy, &original),
+            verifier.remembered(&original, &copy)
+        );
     }
     Ok(())
 }

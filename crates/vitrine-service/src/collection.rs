@@ -24,8 +24,8 @@ use vitrine_engine::duplicates::{DuplicateReport, LeakReport};
 use vitrine_engine::labels::{LabelSuggestion, LabelSuspect};
 use vitrine_engine::neighbours::{nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter};
 use vitrine_engine::verify::{PairVerifier, VerifyOptions};
-use vitrine_model::encoder::Encoder;
 use vitrine_engine::EngineError;
+use vitrine_model::encoder::Encoder;
 use vitrine_store::{FileError, ImageId, ImageRecord, ModelFingerprint, Store};
 
 use crate::error::ApiError;

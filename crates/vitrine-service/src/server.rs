@@ -158,9 +158,6 @@ impl Service {
         let settings = config.settings.clone();
         let ip = listen_address(&settings.bind, settings.effective_token().as_deref())?;
         let state = web::Data::new(AppState::new(config)?);
-        if settings.precompute {
-            api::analyses::precompute_reports(state.clone());
-        }
         let app_state = state.clone();
         let mut server = HttpServer::new(move || {
             let state = app_state.clone();
@@ -186,6 +183,11 @@ impl Service {
             .bind((ip, settings.port))
             .map_err(|source| ServiceError::Bind { bind, source })?;
         let addrs = server.addrs();
+        // Only once the server is certain to start: the thread keeps the
+        // collections open while it works.
+        if settings.precompute {
+            api::analyses::precompute_reports(state.clone());
+        }
         Ok(Self {
             server: server.run(),
             addrs,
