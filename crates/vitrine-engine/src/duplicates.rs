@@ -216,6 +216,7 @@ fn candidate_floor(options: &DuplicateOptions, verifier: Option<&PairVerifier>) 
 
 /// Judges candidates: `Some` for those accepted, with how.
 fn judge(
+    store: &Store,
     catalog: &Catalog,
     options: &DuplicateOptions,
     verifier: Option<&PairVerifier>,
@@ -251,11 +252,21 @@ fn judge(
     // Pairs not judged before are checked in rounds whose files' evidence fits
     // the verifier's budget, so memory stays bounded on any collection; the
     // candidates come ordered by their first image, so a round shares files.
-    let pending: Vec<(VerifiedFile, VerifiedFile)> = candidates
-        .iter()
-        .filter_map(|c| Some((file_of(c.first)?, file_of(c.second)?)))
-        .filter(|(a, b)| verifier.remembered(a, b).is_none())
-        .collect();
+    // Verdicts the store keeps from earlier runs count as judged.
+    let unjudged = |pairs: Vec<(VerifiedFile, VerifiedFile)>| -> Vec<(VerifiedFile, VerifiedFile)> {
+        pairs
+            .into_iter()
+            .filter(|(a, b)| verifier.remembered(a, b).is_none())
+            .collect()
+    };
+    let pending = unjudged(
+        candidates
+            .iter()
+            .filter_map(|c| Some((file_of(c.first)?, file_of(c.second)?)))
+            .collect(),
+    );
+    verifier.recall_from(store, &pending)?;
+    let pending = unjudged(pending);
     let mut rest = pending.as_slice();
     while !rest.is_empty() {
         let mut files = BTreeMap::new();
@@ -278,6 +289,7 @@ fn judge(
         });
         rest = later;
     }
+    verifier.keep_in(store, &pending)?;
     let checks: Vec<Option<PairCheck>> = candidates
         .par_iter()
         .map(|c| verifier.check(&file_of(c.first)?, &file_of(c.second)?).ok())
@@ -382,7 +394,7 @@ pub fn find_duplicates(
     ));
     let floor = candidate_floor(options, verifier);
     let candidates = near_candidates(store, catalog, options, floor)?;
-    let (verdicts, verification) = judge(catalog, options, verifier, &candidates)?;
+    let (verdicts, verification) = judge(store, catalog, options, verifier, &candidates)?;
     let mut verification_of: HashMap<usize, Verification> = HashMap::new();
     for (candidate, verdict) in candidates.iter().zip(verdicts) {
         let Some(verdict) = verdict else { continue };
@@ -607,7 +619,7 @@ pub fn find_leaks_verified(
             Err(near) => candidates.extend(near),
         }
     }
-    let (verdicts, verification) = judge(catalog, duplicates, verifier, &candidates)?;
+    let (verdicts, verification) = judge(store, catalog, duplicates, verifier, &candidates)?;
     // Candidates are grouped by row in decreasing similarity: the first
     // accepted one of each row is its counterpart.
     let mut last_row = None;

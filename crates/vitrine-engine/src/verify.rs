@@ -47,9 +47,10 @@ use std::sync::{Arc, Mutex};
 use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use rayon::prelude::*;
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 use vitrine_imaging::{decode_path, preprocess, DecodeOptions, PreparedImage};
 use vitrine_model::encoder::{Encoder, PatchTokens};
+use vitrine_store::Store;
 
 use crate::error::EngineError;
 
@@ -108,7 +109,7 @@ impl Default for VerifyOptions {
 }
 
 /// The outcome of checking one pair.
-#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
 pub struct PairCheck {
     pub confirmed: bool,
     /// Normalised correlation of the aligned, plane-removed grey thumbnails.
@@ -818,6 +819,60 @@ impl PairVerifier {
             .ok()?
             .get(&(a.content_hash, b.content_hash))
             .copied()
+    }
+
+    /// The kind of the store's pair notes that hold this verifier's verdicts:
+    /// other options (or another version of the check) give another kind, so
+    /// a verdict is only ever reused by the check that made it.
+    fn note_kind(&self) -> [u8; 8] {
+        let identity = format!("pair-check v1 {:?}", self.options);
+        let hash = blake3::hash(identity.as_bytes());
+        let mut kind = [0u8; 8];
+        kind.copy_from_slice(&hash.as_bytes()[..8]);
+        kind
+    }
+
+    /// Remembers the verdicts `store` keeps from earlier runs on any of `pairs`.
+    pub fn recall_from(
+        &self,
+        store: &Store,
+        pairs: &[(VerifiedFile, VerifiedFile)],
+    ) -> Result<(), EngineError> {
+        let kind = self.note_kind();
+        let mut recalled = Vec::new();
+        for (a, b) in pairs {
+            let (a, b) = in_canonical_order(a, b);
+            let Some(note) = store.pair_note(&kind, &a.content_hash, &b.content_hash)? else {
+                continue;
+            };
+            // An unreadable note is only a lost shortcut: the pair is checked again.
+            if let Ok(check) = serde_json::from_slice::<PairCheck>(&note) {
+                recalled.push(((a.content_hash, b.content_hash), check));
+            }
+        }
+        if let Ok(mut verdicts) = self.verdicts.lock() {
+            verdicts.extend(recalled);
+        }
+        Ok(())
+    }
+
+    /// Keeps this verifier's verdicts on `pairs` in `store` for later runs.
+    pub fn keep_in(
+        &self,
+        store: &Store,
+        pairs: &[(VerifiedFile, VerifiedFile)],
+    ) -> Result<(), EngineError> {
+        let mut notes = Vec::new();
+        for (a, b) in pairs {
+            let (a, b) = in_canonical_order(a, b);
+            if let Some(check) = self.remembered(a, b) {
+                let note = serde_json::to_vec(&check)
+                    .map_err(|e| EngineError::InvalidArgument(e.to_string()))?;
+                notes.push((a.content_hash, b.content_hash, note));
+            }
+        }
+        store.put_pair_notes(&self.note_kind(), &notes)?;
+        Ok(())
     }
 
     /// Makes room for the evidence of `files` within `capacity` images: when

@@ -146,7 +146,7 @@ fn mild_copies_of_real_photos_are_found_and_distinct_photos_kept_apart() -> Resu
     index_roots(
         &mut store,
         &encoder,
-        &[folder],
+        &[folder.clone()],
         &IndexOptions::default(),
         &NoProgress,
     )?;
@@ -212,5 +212,23 @@ fn mild_copies_of_real_photos_are_found_and_distinct_photos_kept_apart() -> Resu
             verifier.remembered(&original, &copy)
         );
     }
+
+    // Verdicts are kept in the store: a fresh verifier (as after a restart)
+    // judges every pair again without the files, which are moved away here;
+    // without the kept verdicts the pairs would be unavailable.
+    let before = find_duplicates(&store, &catalog, &options, Some(&verifier))?;
+    std::fs::rename(&folder, work.path().join("moved-away"))?;
+    let fresh = PairVerifier::new(Arc::clone(&encoder), VerifyOptions::default());
+    let after = find_duplicates(&store, &catalog, &options, Some(&fresh))?;
+    assert_eq!(
+        after.verification.unavailable, 0,
+        "{:?}",
+        after.verification
+    );
+    assert_eq!(after.verification.confirmed, before.verification.confirmed);
+    assert_eq!(
+        serde_json::to_value(&after.groups)?,
+        serde_json::to_value(&before.groups)?
+    );
     Ok(())
 }

@@ -10,6 +10,7 @@
 //! | `h` + content hash (32) + id (u64 BE) | empty                         |
 //! | `t` + root (u32 BE)                   | root path, UTF-8              |
 //! | `f` + root (u32 BE) + rel_path        | postcard `FileError`          |
+//! | `n` + kind (8) + hash (32) + hash (32)| a note on two files' contents |
 
 use crate::types::ImageId;
 
@@ -25,6 +26,7 @@ pub const PATH: u8 = b'p';
 pub const CONTENT_HASH: u8 = b'h';
 pub const ROOT: u8 = b't';
 pub const FILE_ERROR: u8 = b'f';
+pub const PAIR_NOTE: u8 = b'n';
 
 pub fn record(id: ImageId) -> [u8; 9] {
     with_id(RECORD, id)
@@ -74,6 +76,15 @@ pub fn content_hash(hash: &[u8; 32], id: ImageId) -> [u8; 41] {
     let mut key = [0u8; 41];
     key[..33].copy_from_slice(&content_hash_prefix(hash));
     key[33..].copy_from_slice(&id.to_be_bytes());
+    key
+}
+
+pub fn pair_note(kind: &[u8; 8], first: &[u8; 32], second: &[u8; 32]) -> [u8; 73] {
+    let mut key = [0u8; 73];
+    key[0] = PAIR_NOTE;
+    key[1..9].copy_from_slice(kind);
+    key[9..41].copy_from_slice(first);
+    key[41..].copy_from_slice(second);
     key
 }
 

@@ -125,6 +125,37 @@ impl Store {
         Store::load(dir, db, params)
     }
 
+    /// A note kept on a pair of file contents (named by their content hashes)
+    /// under `kind`, for example a verdict that is costly to compute again.
+    /// Notes are a cache beside the collection: no commit touches them, and
+    /// a note on contents no longer indexed is simply never asked for.
+    pub fn pair_note(
+        &self,
+        kind: &[u8; 8],
+        first: &[u8; 32],
+        second: &[u8; 32],
+    ) -> Result<Option<Vec<u8>>, StoreError> {
+        Ok(self
+            .db
+            .get(keys::pair_note(kind, first, second))
+            .map_err(self.db_error())?
+            .map(|value| value.to_vec()))
+    }
+
+    /// Keeps notes on pairs of file contents (see [`Store::pair_note`]), in one
+    /// batch. Not flushed: losing the latest notes in a crash costs only time.
+    pub fn put_pair_notes(
+        &self,
+        kind: &[u8; 8],
+        notes: &[([u8; 32], [u8; 32], Vec<u8>)],
+    ) -> Result<(), StoreError> {
+        let mut batch = sled::Batch::default();
+        for (first, second, note) in notes {
+            batch.insert(&keys::pair_note(kind, first, second)[..], note.as_slice());
+        }
+        self.db.apply_batch(batch).map_err(self.db_error())
+    }
+
     /// Reads everything but the records into memory and brings the graph in line with
     /// sled: loads the recorded dump when it is intact, otherwise rebuilds.
     fn load(dir: &Path, db: sled::Db, params: HnswParams) -> Result<Store, StoreError> {
