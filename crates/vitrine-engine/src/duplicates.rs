@@ -283,16 +283,17 @@ fn judge(
         let files: Vec<VerifiedFile> = files.into_values().collect();
         verifier.make_room(&files, EVIDENCE_PER_ROUND);
         verifier.prepare(&files)?;
-        // Failures (an unreadable file) are not remembered: judged below.
+        // Failures (an unreadable file) are not remembered: judged on the threshold below.
         round.par_iter().for_each(|(a, b)| {
             let _ = verifier.check(a, b);
         });
         rest = later;
     }
     verifier.keep_in(store, &pending)?;
+    // Every pair is judged now, except those with a file that could not be read.
     let checks: Vec<Option<PairCheck>> = candidates
-        .par_iter()
-        .map(|c| verifier.check(&file_of(c.first)?, &file_of(c.second)?).ok())
+        .iter()
+        .map(|c| verifier.remembered(&file_of(c.first)?, &file_of(c.second)?))
         .collect();
     let mut verdicts = Vec::with_capacity(candidates.len());
     for (candidate, check) in candidates.iter().zip(checks) {

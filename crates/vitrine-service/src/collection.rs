@@ -28,6 +28,7 @@ use vitrine_engine::EngineError;
 use vitrine_model::encoder::Encoder;
 use vitrine_store::{FileError, ImageId, ImageRecord, ModelFingerprint, Store};
 
+use crate::api::analyses::NearKey;
 use crate::error::ApiError;
 
 /// Everything readers need about a collection at one committed state.
@@ -100,11 +101,10 @@ pub struct Collection {
     store: RwLock<Store>,
     snapshot: RwLock<Arc<Snapshot>>,
     generations: AtomicU64,
-    /// Duplicate reports by (threshold bits, candidate threshold bits, verified).
-    pub duplicates: Memo<(u32, u32, bool), DuplicateReport>,
-    /// Leak reports by (evaluated splits, reference split, threshold bits,
-    /// candidate threshold bits, verified).
-    pub leaks: Memo<(Vec<String>, String, u32, u32, bool), LeakReport>,
+    /// Duplicate reports by their near-pair options.
+    pub duplicates: Memo<NearKey, DuplicateReport>,
+    /// Leak reports by (evaluated splits, reference split, near-pair options).
+    pub leaks: Memo<(Vec<String>, String, NearKey), LeakReport>,
     /// Lives as long as the collection, so that pair verdicts outlast one
     /// query: another threshold or a new generation re-checks only new pairs.
     verifier: OnceLock<Arc<PairVerifier>>,

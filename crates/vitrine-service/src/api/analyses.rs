@@ -264,6 +264,17 @@ fn verifier_for(
     Some(collection.verifier(encoder))
 }
 
+/// What of the near-pair options a memoised report depends on.
+pub type NearKey = (u32, u32, bool);
+
+fn near_key(options: &DuplicateOptions) -> NearKey {
+    (
+        options.near_duplicate_threshold.to_bits(),
+        options.candidate_threshold.to_bits(),
+        options.verify,
+    )
+}
+
 /// The collection's duplicate report for `options`, memoised per generation.
 /// Blocks: run it off the async threads.
 pub(crate) fn duplicate_report(
@@ -272,14 +283,9 @@ pub(crate) fn duplicate_report(
     options: &DuplicateOptions,
 ) -> Result<Arc<DuplicateReport>, ApiError> {
     collection.with_store(BUSY_WAIT, |store, snapshot| {
-        let key = (
-            options.near_duplicate_threshold.to_bits(),
-            options.candidate_threshold.to_bits(),
-            options.verify,
-        );
         collection
             .duplicates
-            .get_or_try(snapshot.generation, key, || {
+            .get_or_try(snapshot.generation, near_key(options), || {
                 let verifier = verifier_for(state, collection, snapshot, options);
                 find_duplicates(store, &snapshot.catalog, options, verifier.as_deref())
             })
@@ -298,9 +304,7 @@ pub(crate) fn leak_report(
     let key = (
         options.evaluated_splits.clone(),
         options.reference_split.clone(),
-        near.near_duplicate_threshold.to_bits(),
-        near.candidate_threshold.to_bits(),
-        near.verify,
+        near_key(near),
     );
     collection.with_store(BUSY_WAIT, |store, snapshot| {
         collection
