@@ -754,11 +754,15 @@ impl PairVerifier {
         }
     }
 
-    fn decode_options(&self) -> DecodeOptions {
-        DecodeOptions {
-            target_shorter_side: Some(self.encoder.spec().preprocess.resize_shorter),
+    /// The model's input for a file, decoded at the size the model needs.
+    fn prepared(&self, file: &VerifiedFile) -> Result<PreparedImage, EngineError> {
+        let spec = &self.encoder.spec().preprocess;
+        let decode = DecodeOptions {
+            target_shorter_side: Some(spec.resize_shorter),
             ..DecodeOptions::default()
-        }
+        };
+        let decoded = decode_path(&file.path, &decode)?;
+        Ok(preprocess(&decoded.rgb, spec)?)
     }
 
     /// Decodes, prepares and encodes a file once.
@@ -766,9 +770,7 @@ impl PairVerifier {
         if let Some(found) = self.cached_evidence(file) {
             return Ok(found);
         }
-        let decoded = decode_path(&file.path, &self.decode_options())?;
-        let prepared = preprocess(&decoded.rgb, &self.encoder.spec().preprocess)?;
-        let evidence = ImageEvidence::of_prepared(&self.encoder, &[prepared])?
+        let evidence = ImageEvidence::of_prepared(&self.encoder, &[self.prepared(file)?])?
             .pop()
             .map(|(_, evidence)| Arc::new(evidence))
             .ok_or_else(|| EngineError::InvalidArgument("encoder returned no output".into()))?;
@@ -782,8 +784,6 @@ impl PairVerifier {
     /// batched forward passes. Files that fail are left out (a later
     /// [`Self::check`] on them reports the error).
     pub fn prepare(&self, files: &[VerifiedFile]) -> Result<(), EngineError> {
-        let spec = &self.encoder.spec().preprocess;
-        let decode = self.decode_options();
         let missing: Vec<&VerifiedFile> = files
             .iter()
             .filter(|file| self.cached_evidence(file).is_none())
@@ -791,10 +791,7 @@ impl PairVerifier {
         for chunk in missing.chunks(PREPARE_BATCH) {
             let prepared: Vec<(&VerifiedFile, PreparedImage)> = chunk
                 .par_iter()
-                .filter_map(|file| {
-                    let decoded = decode_path(&file.path, &decode).ok()?;
-                    Some((*file, preprocess(&decoded.rgb, spec).ok()?))
-                })
+                .filter_map(|file| Some((*file, self.prepared(file).ok()?)))
                 .collect();
             let images: Vec<PreparedImage> = prepared.iter().map(|(_, p)| p.clone()).collect();
             let evidence = ImageEvidence::of_prepared(&self.encoder, &images)?;
