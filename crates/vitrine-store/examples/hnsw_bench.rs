@@ -1,5 +1,5 @@
-//! HNSW benchmark: the store's graph (built by hnsw_rs, searched in its compact form)
-//! against hnswlib, one thread each, same vectors, same M and ef_construction.
+//! HNSW benchmark: the store's graph (built by `construct.rs`, searched in its compact
+//! form) against hnswlib, one thread each, same vectors, same M and ef_construction.
 //!
 //! Run (release):
 //!   VITRINE_PYTHON=.venv/bin/python \
@@ -9,22 +9,21 @@
 //! build time, recall@10 and median queries/s over an ef_search sweep for both
 //! libraries, then the cheapest ef_search reaching recall@10 >= 0.95 and >= 0.99. For
 //! the first data set it also fills a store with the vectors (commits of 10,000 on
-//! every core, as indexing does), saves it and times opening it, against hnsw_rs'
-//! own reload of the same dump and hnswlib's reload of its saved index.
+//! every core, as indexing does), saves it and times opening it, against hnswlib's
+//! reload of its saved index.
 
 #[path = "../tests/common/mod.rs"]
 mod common;
 
 use std::fs::File;
 use std::io::{BufWriter, Write};
-use std::path::{Path, PathBuf};
+use std::path::Path;
 use std::process::Command;
 use std::time::Instant;
 
 use anyhow::{bail, Context};
 use common::synthetic::{exact_top_k, recall_at_k, ClusteredSource};
-use hnsw_rs::prelude::HnswIo;
-use vitrine_store::{CosineDistance, Graph, HnswParams, ImageId, Store};
+use vitrine_store::{Graph, HnswParams, ImageId, Store};
 
 const DIM: usize = 384;
 const K: usize = 10;
@@ -106,7 +105,7 @@ fn run_vitrine(data: &[f32], queries: &[f32], truth: &[Vec<usize>], params: &Hns
         .collect();
     let started = Instant::now();
     let graph = Graph::build(params, DIM, &items);
-    // The first search copies hnsw_rs' layers into the compact form: part of the build.
+    // The first search freezes the layers into the compact form: part of the build.
     graph.search(&queries[..DIM], K, None);
     let build_s = started.elapsed().as_secs_f64();
 
@@ -145,11 +144,10 @@ struct OpenTimes {
     save_s: f64,
     open_s: f64,
     first_search_s: f64,
-    hnsw_rs_reload_s: f64,
 }
 
 /// Fills a store with `data`, saves it, then times `Store::open` and the first search
-/// after it, and hnsw_rs' own reload of the saved dump (what opening used to run).
+/// after it.
 fn measure_open(dir: &Path, data: &[f32]) -> anyhow::Result<OpenTimes> {
     let started = Instant::now();
     let (mut store, _) = common::populated_store(dir, data, DIM);
@@ -173,34 +171,12 @@ fn measure_open(dir: &Path, data: &[f32]) -> anyhow::Result<OpenTimes> {
         first_searches.push(started.elapsed().as_secs_f64());
     }
 
-    let (graph_dir, basename) = saved_dump(dir)?;
-    let mut reloads = Vec::with_capacity(OPEN_REPEATS);
-    for _ in 0..OPEN_REPEATS {
-        let started = Instant::now();
-        let io = HnswIo::new(&graph_dir, &basename);
-        let hnsw = io.load_hnsw_with_dist(CosineDistance)?;
-        reloads.push(started.elapsed().as_secs_f64());
-        drop(hnsw);
-    }
     Ok(OpenTimes {
         fill_s,
         save_s,
         open_s: median(opens),
         first_search_s: median(first_searches),
-        hnsw_rs_reload_s: median(reloads),
     })
-}
-
-/// The directory and basename of the one dump in a saved store.
-fn saved_dump(store_dir: &Path) -> anyhow::Result<(PathBuf, String)> {
-    let graph_dir = store_dir.join("hnsw");
-    for entry in std::fs::read_dir(&graph_dir)? {
-        let name = entry?.file_name().to_string_lossy().into_owned();
-        if let Some(basename) = name.strip_suffix(".hnsw.graph") {
-            return Ok((graph_dir, basename.to_string()));
-        }
-    }
-    bail!("no dump in {}", graph_dir.display())
 }
 
 fn run_hnswlib(
@@ -263,7 +239,7 @@ fn print_report(
         dataset.name, params.max_nb_connection, params.ef_construction
     );
     println!(
-        "build: vitrine (hnsw_rs insertion + compact copy) {:.1} s, hnswlib {:.1} s, \
+        "build: vitrine (insertion + compact copy) {:.1} s, hnswlib {:.1} s, \
          ratio vitrine/hnswlib {:.2}",
         ours.build_s,
         reference.build_s,
@@ -313,11 +289,9 @@ fn print_open_report(points: usize, open: &OpenTimes, reference: &Run) {
         open.fill_s, open.save_s
     );
     println!(
-        "open: vitrine Store::open {:.2} s (then first search {:.1} ms); hnsw_rs reload of \
-         the same dump alone {:.2} s; hnswlib load_index {}",
+        "open: vitrine Store::open {:.2} s (then first search {:.1} ms); hnswlib load_index {}",
         open.open_s,
         open.first_search_s * 1e3,
-        open.hnsw_rs_reload_s,
         reference
             .load_s
             .map_or_else(|| "n/a".into(), |s| format!("{s:.2} s")),

@@ -24,7 +24,7 @@ use std::cell::Cell;
 use std::cmp::{Ordering, Reverse};
 use std::collections::BinaryHeap;
 
-use crate::distance::{self, Isa};
+use crate::distance::{self, WithDot};
 
 /// Floats per 64-byte cache line.
 const LINE_FLOATS: usize = 16;
@@ -328,11 +328,44 @@ fn to_u32(value: usize) -> u32 {
     u32::try_from(value).expect("more than 4 billion graph links")
 }
 
+/// Neighbour lists a search can walk: the frozen [`Links`], or the lists of a graph
+/// still being built (`construct.rs`), which locks a node's lists while they are read.
+pub(crate) trait Adjacency {
+    fn node_count(&self) -> usize;
+    fn level(&self, node: u32) -> usize;
+    /// Calls `visit` with each of `node`'s neighbours on `layer`, in list order.
+    fn for_each_neighbour(&self, node: u32, layer: usize, visit: impl FnMut(u32));
+    /// A hint that `node`'s lists are read next.
+    fn prefetch_lists(&self, _node: u32) {}
+}
+
+impl Adjacency for Links {
+    fn node_count(&self) -> usize {
+        self.len()
+    }
+
+    fn level(&self, node: u32) -> usize {
+        Links::level(self, node)
+    }
+
+    #[inline(always)]
+    fn for_each_neighbour(&self, node: u32, layer: usize, mut visit: impl FnMut(u32)) {
+        for &neighbour in self.neighbours(node, layer) {
+            visit(neighbour);
+        }
+    }
+
+    #[inline(always)]
+    fn prefetch_lists(&self, node: u32) {
+        self.prefetch_base(node);
+    }
+}
+
 /// A node and its distance to the query, the negated dot product (smaller is nearer).
 #[derive(Clone, Copy, Debug)]
-struct Scored {
-    distance: f32,
-    node: u32,
+pub(crate) struct Scored {
+    pub distance: f32,
+    pub node: u32,
 }
 
 impl PartialEq for Scored {
@@ -360,7 +393,7 @@ impl Ord for Scored {
 /// Per-thread buffers reused by every search, so a query allocates nothing but its
 /// answer.
 #[derive(Default)]
-struct Scratch {
+pub(crate) struct Scratch {
     /// `stamps[n] == stamp` marks node `n` as visited by the current query; bumping
     /// `stamp` forgets every mark at once.
     stamps: Vec<u16>,
@@ -392,13 +425,29 @@ impl Scratch {
         *stamp = self.stamp;
         first
     }
+
+    /// The last beam's results, nearest first.
+    pub fn take_results(&mut self) -> Vec<Scored> {
+        let mut found: Vec<Scored> = self.results.drain().collect();
+        found.sort_unstable();
+        found
+    }
 }
 
 thread_local! {
     static SCRATCH: Cell<Scratch> = Cell::new(Scratch::default());
 }
 
-/// How many vectors ahead of the dot product the layer 0 search loads a vector.
+/// Runs `work` with this thread's scratch buffers. They are taken out meanwhile, so a
+/// search nested in `work` (in an `accept` callback, say) finds none and makes its own.
+pub(crate) fn with_scratch<R>(work: impl FnOnce(&mut Scratch) -> R) -> R {
+    let mut scratch = SCRATCH.take();
+    let result = work(&mut scratch);
+    SCRATCH.set(scratch);
+    result
+}
+
+/// How many vectors ahead of the dot product the beam search loads a vector.
 const PREFETCH_AHEAD: usize = 3;
 
 /// Up to `ef` nodes nearest to `query` among those `accept` returns true for, as
@@ -411,93 +460,123 @@ pub fn search(
     ef: usize,
     accept: impl Fn(u32) -> bool,
 ) -> Vec<(f32, u32)> {
-    // One copy of the search per instruction set, with the dot product inlined.
-    match distance::isa() {
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: `isa()` reports AVX-512F only when the CPU has it.
-        Isa::Avx512 => unsafe { search_avx512(vectors, links, query, ef, accept) },
-        #[cfg(target_arch = "x86_64")]
-        // SAFETY: `isa()` reports AVX2 + FMA only when the CPU has them.
-        Isa::Avx2Fma => unsafe { search_avx2_fma(vectors, links, query, ef, accept) },
-        _ => search_with(vectors, links, query, ef, accept, distance::dot_portable),
+    distance::with_best_dot(LinksSearch {
+        vectors,
+        links,
+        query,
+        ef,
+        accept,
+    })
+}
+
+struct LinksSearch<'a, F> {
+    vectors: &'a Vectors,
+    links: &'a Links,
+    query: &'a [f32],
+    ef: usize,
+    accept: F,
+}
+
+impl<F: Fn(u32) -> bool> WithDot for LinksSearch<'_, F> {
+    type Output = Vec<(f32, u32)>;
+
+    #[inline(always)]
+    fn run(self, dot: impl Fn(&[f32], &[f32]) -> f32 + Copy) -> Vec<(f32, u32)> {
+        let LinksSearch {
+            vectors,
+            links,
+            query,
+            ef,
+            accept,
+        } = self;
+        let Some(entry) = links.entry() else {
+            return Vec::new();
+        };
+        if ef == 0 {
+            return Vec::new();
+        }
+        let start = scored(dot, vectors, query, entry);
+        let nearest = descend(
+            links,
+            vectors,
+            query,
+            start,
+            (1..=links.level(entry)).rev(),
+            dot,
+        );
+        let found = with_scratch(|scratch| {
+            // Layer 0 also follows a node's upper-layer links (see the module notes).
+            let layers = |node: u32| 0..=links.level(node);
+            beam(
+                links, vectors, query, nearest, ef, layers, accept, dot, scratch,
+            );
+            scratch.take_results()
+        });
+        found.into_iter().map(|s| (-s.distance, s.node)).collect()
     }
 }
 
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx512f")]
-unsafe fn search_avx512(
-    vectors: &Vectors,
-    links: &Links,
-    query: &[f32],
-    ef: usize,
-    accept: impl Fn(u32) -> bool,
-) -> Vec<(f32, u32)> {
-    // SAFETY: this function only runs on CPUs with AVX-512F.
-    let dot = |a: &[f32], b: &[f32]| unsafe { distance::dot_avx512(a, b) };
-    search_with(vectors, links, query, ef, accept, dot)
-}
-
-#[cfg(target_arch = "x86_64")]
-#[target_feature(enable = "avx2,fma")]
-unsafe fn search_avx2_fma(
-    vectors: &Vectors,
-    links: &Links,
-    query: &[f32],
-    ef: usize,
-    accept: impl Fn(u32) -> bool,
-) -> Vec<(f32, u32)> {
-    // SAFETY: this function only runs on CPUs with AVX2 and FMA.
-    let dot = |a: &[f32], b: &[f32]| unsafe { distance::dot_avx2_fma(a, b) };
-    search_with(vectors, links, query, ef, accept, dot)
-}
-
+/// `node` scored against `query`.
 #[inline(always)]
-fn search_with(
-    vectors: &Vectors,
-    links: &Links,
-    query: &[f32],
-    ef: usize,
-    accept: impl Fn(u32) -> bool,
+pub(crate) fn scored(
     dot: impl Fn(&[f32], &[f32]) -> f32,
-) -> Vec<(f32, u32)> {
-    let Some(entry) = links.entry() else {
-        return Vec::new();
-    };
-    if ef == 0 {
-        return Vec::new();
+    vectors: &Vectors,
+    query: &[f32],
+    node: u32,
+) -> Scored {
+    Scored {
+        distance: -dot(query, vectors.padded(node as usize)),
+        node,
     }
-    let mut nearest = Scored {
-        distance: distance(&dot, vectors, query, entry),
-        node: entry,
-    };
-    for layer in (1..=links.level(entry)).rev() {
+}
+
+/// Greedy descent (the upper part of Algorithm 5): on each of `layers`, top down, moves
+/// to the nearest neighbour until no neighbour is nearer.
+#[inline(always)]
+pub(crate) fn descend(
+    adjacency: &impl Adjacency,
+    vectors: &Vectors,
+    query: &[f32],
+    mut nearest: Scored,
+    layers: impl Iterator<Item = usize>,
+    dot: impl Fn(&[f32], &[f32]) -> f32 + Copy,
+) -> Scored {
+    for layer in layers {
         loop {
-            let mut moved = false;
-            for &node in links.neighbours(nearest.node, layer) {
-                let candidate = Scored {
-                    distance: distance(&dot, vectors, query, node),
-                    node,
-                };
-                if candidate < nearest {
-                    nearest = candidate;
-                    moved = true;
-                }
-            }
-            if !moved {
+            let from = nearest.node;
+            adjacency.for_each_neighbour(from, layer, |node| {
+                nearest = nearest.min(scored(dot, vectors, query, node));
+            });
+            if nearest.node == from {
                 break;
             }
         }
     }
+    nearest
+}
 
-    // Taken out of the thread-local for the whole search (a search nested in
-    // `accept` finds it empty and makes its own); no closure stands between the loop
-    // and the inlined dot product.
-    let mut scratch = SCRATCH.take();
-    scratch.start(links.len());
-    scratch.visit(nearest.node);
-    scratch.candidates.push(Reverse(nearest));
-    if accept(nearest.node) {
-        scratch.results.push(nearest);
+/// Beam search of width `ef` (Algorithm 2) from `start`, expanding each node along its
+/// lists on `layers(node)`. Nodes `accept` refuses are traversed but never kept, and the
+/// beam goes on until it holds `ef` accepted nodes; they are left in `scratch` (see
+/// [`Scratch::take_results`]).
+#[allow(clippy::too_many_arguments)]
+#[inline(always)]
+pub(crate) fn beam<L: IntoIterator<Item = usize>>(
+    adjacency: &impl Adjacency,
+    vectors: &Vectors,
+    query: &[f32],
+    start: Scored,
+    ef: usize,
+    layers: impl Fn(u32) -> L,
+    accept: impl Fn(u32) -> bool,
+    dot: impl Fn(&[f32], &[f32]) -> f32 + Copy,
+    scratch: &mut Scratch,
+) {
+    scratch.start(adjacency.node_count());
+    scratch.visit(start.node);
+    scratch.candidates.push(Reverse(start));
+    if accept(start.node) {
+        scratch.results.push(start);
     }
     // The distance a node must beat to enter a full result list.
     let mut bound = scratch
@@ -509,12 +588,12 @@ fn search_with(
             break;
         }
         scratch.unvisited.clear();
-        for layer in 0..=links.level(current.node) {
-            for &node in links.neighbours(current.node, layer) {
+        for layer in layers(current.node) {
+            adjacency.for_each_neighbour(current.node, layer, |node| {
                 if scratch.visit(node) {
                     scratch.unvisited.push(node);
                 }
-            }
+            });
         }
         // Start every vector's first line loading, then load each vector fully a few
         // dot products ahead (measured: 1, 3 and 5 ahead are within noise of each
@@ -529,14 +608,11 @@ fn search_with(
             if let Some(&next) = scratch.unvisited.get(i + PREFETCH_AHEAD) {
                 vectors.prefetch(next as usize);
             }
-            let scored = Scored {
-                distance: distance(&dot, vectors, query, node),
-                node,
-            };
-            if scratch.results.len() < ef || scored.distance < bound {
-                scratch.candidates.push(Reverse(scored));
+            let candidate = scored(dot, vectors, query, node);
+            if scratch.results.len() < ef || candidate.distance < bound {
+                scratch.candidates.push(Reverse(candidate));
                 if accept(node) {
-                    scratch.results.push(scored);
+                    scratch.results.push(candidate);
                     if scratch.results.len() > ef {
                         scratch.results.pop();
                     }
@@ -544,26 +620,11 @@ fn search_with(
                 }
             }
         }
-        // The next node to expand is known now: start loading its list.
+        // The next node to expand is known now: start loading its lists.
         if let Some(Reverse(next)) = scratch.candidates.peek() {
-            links.prefetch_base(next.node);
+            adjacency.prefetch_lists(next.node);
         }
     }
-    let mut found: Vec<Scored> = scratch.results.drain().collect();
-    SCRATCH.set(scratch);
-    found.sort_unstable();
-    found.into_iter().map(|s| (-s.distance, s.node)).collect()
-}
-
-/// Distance from `query` to node `node` (the negated dot product).
-#[inline(always)]
-fn distance(
-    dot: &impl Fn(&[f32], &[f32]) -> f32,
-    vectors: &Vectors,
-    query: &[f32],
-    node: u32,
-) -> f32 {
-    -dot(query, vectors.padded(node as usize))
 }
 
 #[cfg(test)]

@@ -92,6 +92,41 @@ fn dot_avx512_checked(a: &[f32], b: &[f32]) -> f32 {
     unsafe { dot_avx512(a, b) }
 }
 
+/// Work that loops over many dot products. [`with_best_dot`] runs it inside a function
+/// compiled for the CPU's best instruction set, with the kernel inlined into the loop:
+/// no call through a pointer, no feature check per product. Implementations mark
+/// `run` `#[inline(always)]` so that it is compiled into each of those functions.
+pub trait WithDot {
+    type Output;
+    fn run(self, dot: impl Fn(&[f32], &[f32]) -> f32 + Copy) -> Self::Output;
+}
+
+pub fn with_best_dot<W: WithDot>(work: W) -> W::Output {
+    match isa() {
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: `isa()` reports AVX-512F only when the CPU has it.
+        Isa::Avx512 => unsafe { run_avx512(work) },
+        #[cfg(target_arch = "x86_64")]
+        // SAFETY: `isa()` reports AVX2 + FMA only when the CPU has them.
+        Isa::Avx2Fma => unsafe { run_avx2_fma(work) },
+        _ => work.run(dot_portable),
+    }
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx512f")]
+unsafe fn run_avx512<W: WithDot>(work: W) -> W::Output {
+    // SAFETY: this function only runs on CPUs with AVX-512F.
+    work.run(|a: &[f32], b: &[f32]| unsafe { dot_avx512(a, b) })
+}
+
+#[cfg(target_arch = "x86_64")]
+#[target_feature(enable = "avx2,fma")]
+unsafe fn run_avx2_fma<W: WithDot>(work: W) -> W::Output {
+    // SAFETY: this function only runs on CPUs with AVX2 and FMA.
+    work.run(|a: &[f32], b: &[f32]| unsafe { dot_avx2_fma(a, b) })
+}
+
 /// # Safety
 /// The CPU must have AVX2 and FMA.
 #[cfg(target_arch = "x86_64")]

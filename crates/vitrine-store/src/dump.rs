@@ -1,9 +1,6 @@
-//! Reads an hnsw_rs dump straight into the compact search form, without building
-//! hnsw_rs' own structure (one `Arc` per node and per link), which is what made
-//! opening a large store slow.
-//!
-//! The layout is the one hnsw_rs 0.3 writes with `file_dump` in full mode (its
-//! `hnswio.rs`), all integers native-endian and `usize` as 8 bytes:
+//! Reads and writes the graph's dump files, in the layout hnsw_rs 0.3 writes with
+//! `file_dump` in full mode (its `hnswio.rs`), all integers native-endian and `usize`
+//! as 8 bytes, so that hnsw_rs itself can load every dump (the tests do):
 //!
 //! - graph file: description (magic, mode, M, level scale, layer count, ef_construction,
 //!   point count, dimension, distance type name, value type name); layer count again;
@@ -13,16 +10,17 @@
 //! - data file: magic and dimension, then per point in the same order a magic, the
 //!   origin id, the byte length and the f32 values.
 //!
-//! The checksum recorded in the manifest is computed while reading, in the same pass.
-//! `tests::parsed_dump_equals_hnsw_rs_reload` checks this reader against hnsw_rs' own.
+//! Reading goes straight into the compact search form. The checksum recorded in the
+//! manifest is computed while reading or writing, in the same pass.
 
 use std::fs::File;
-use std::io::{self, BufReader, Read};
+use std::io::{self, BufReader, BufWriter, Read, Write};
 use std::path::Path;
 
 use crate::compact::{Links, LinksBuilder, Vectors};
-use crate::graph::{CosineDistance, DumpFile, IndexManifest, LoadFailure, MAX_LAYERS};
-use crate::types::ImageId;
+use crate::distance::dot;
+use crate::graph::{DumpFile, IndexManifest, LoadFailure, MAX_LAYERS};
+use crate::types::{HnswParams, ImageId};
 
 const MAGIC_DESCRIPTION: u32 = 0x002a_6779;
 const MAGIC_LAYER: u32 = 0x000a_676f;
@@ -30,6 +28,10 @@ const MAGIC_POINT: u32 = 0x000a_678f;
 const MAGIC_DATA: u32 = 0xa67f_0000;
 /// `file_dump` always writes full mode (point ids with every neighbour).
 const FULL_MODE: u8 = 1;
+/// The distance's type name, which hnsw_rs checks on loading. Graphs were built by
+/// hnsw_rs with a distance type of this name until format 5; the name stays so that
+/// those dumps still load, and so that hnsw_rs loads ours with `graph::CosineDistance`.
+const DISTANCE_NAME: &str = "vitrine_store::graph::CosineDistance";
 /// Longer neighbour lists than hnsw_rs can make (it caps M at 256, layer 0 at 2M)
 /// mean a malformed file; refusing them bounds allocations.
 const MAX_LIST: usize = 512;
@@ -191,15 +193,8 @@ struct GraphPart {
     links: Links,
 }
 
-/// A neighbour as the dump lists it.
-struct Neighbour {
-    distance: f32,
-    origin: u64,
-    /// (layer, rank) packed by `pack`, until every layer's size is known.
-    packed: u32,
-}
-
-/// Bits of a packed (layer, rank) for the rank; layers (< 16) take the top 4 bits.
+/// A point's (layer, rank) packed into a u32 until every layer's size is known: bits
+/// for the rank; layers (< 16) take the top 4 bits.
 const RANK_BITS: u32 = 28;
 
 fn pack(layer: u8, rank: i32) -> io::Result<u32> {
@@ -226,7 +221,7 @@ fn read_graph(input: &mut Fields, dim: usize, points: usize) -> io::Result<Graph
     if input.size()? != dim {
         return Err(malformed("dimension differs from the store's"));
     }
-    if input.name()? != std::any::type_name::<CosineDistance>() {
+    if input.name()? != DISTANCE_NAME {
         return Err(malformed("written with another distance"));
     }
     if input.name()? != std::any::type_name::<f32>() {
@@ -261,23 +256,13 @@ fn read_graph(input: &mut Fields, dim: usize, points: usize) -> io::Result<Graph
                 }
                 list.clear();
                 for _ in 0..len {
-                    let origin = input.u64()?;
-                    let packed = pack(input.u8()?, input.i32()?)?;
-                    let distance = input.f32()?;
-                    list.push(Neighbour {
-                        distance,
-                        origin,
-                        packed,
-                    });
+                    let _origin = input.u64()?;
+                    list.push(pack(input.u8()?, input.i32()?)?);
+                    let _distance = input.f32()?;
                 }
                 // hnsw_rs also writes lists above a point's own level (never searched).
                 if list_layer <= layer {
-                    list.sort_by(|a, b| {
-                        a.distance
-                            .total_cmp(&b.distance)
-                            .then(a.origin.cmp(&b.origin))
-                    });
-                    builder.add_list(list.iter().map(|n| n.packed));
+                    builder.add_list(list.iter().copied());
                 }
             }
         }
@@ -286,17 +271,10 @@ fn read_graph(input: &mut Fields, dim: usize, points: usize) -> io::Result<Graph
     if origins.len() != points {
         return Err(malformed("fewer points than the description says"));
     }
-    let _entry_origin = input.u64()?;
-    pack(input.u8()?, input.i32()?)?;
+    let entry_origin = input.u64()?;
+    let entry = pack(input.u8()?, input.i32()?)?;
 
-    // Same rule as for a graph copied from memory: the first point of the top layer.
-    let entry = layer_start
-        .windows(2)
-        .enumerate()
-        .rev()
-        .find(|(_, w)| w[1] > w[0])
-        .map(|(layer, _)| (layer as u32) << RANK_BITS);
-    let mut links = builder.finish(entry);
+    let mut links = builder.finish((points > 0).then_some(entry));
     let resolved = links.map_nodes(|packed| {
         let layer = (packed >> RANK_BITS) as usize;
         let rank = (packed & ((1 << RANK_BITS) - 1)) as usize;
@@ -306,6 +284,12 @@ fn read_graph(input: &mut Fields, dim: usize, points: usize) -> io::Result<Graph
     });
     if !resolved {
         return Err(malformed("neighbour beyond its layer"));
+    }
+    if links
+        .entry()
+        .is_some_and(|node| origins[node as usize] != entry_origin)
+    {
+        return Err(malformed("entry point names another point"));
     }
     Ok(GraphPart { origins, links })
 }
@@ -328,25 +312,174 @@ fn read_data(input: &mut Fields, dim: usize, points: usize) -> io::Result<(Vecto
     Ok((vectors, origins))
 }
 
+/// A graph as [`write`] needs it: node `n` has the vector `vectors.padded(n)` and the
+/// id `image_ids[n]`.
+pub struct Written<'a> {
+    pub vectors: &'a Vectors,
+    pub image_ids: &'a [ImageId],
+    pub links: &'a Links,
+    pub params: &'a HnswParams,
+}
+
+/// Writes `basename.hnsw.graph` and `basename.hnsw.data` in `dir` and fsyncs them;
+/// returns each file's manifest entry. The graph must have an entry point.
+pub fn write(dir: &Path, basename: &str, graph: &Written) -> io::Result<Vec<DumpFile>> {
+    let links = graph.links;
+    let entry = links
+        .entry()
+        .ok_or_else(|| io::Error::new(io::ErrorKind::InvalidInput, "an empty graph has no dump"))?;
+    // Points go layer by layer (a point's layer is its level), in node order within one.
+    let mut by_layer: Vec<Vec<u32>> = vec![Vec::new(); MAX_LAYERS];
+    for node in 0..links.len() as u32 {
+        by_layer[links.level(node)].push(node);
+    }
+    let mut rank = vec![0i32; links.len()];
+    for layer in &by_layer {
+        for (position, &node) in layer.iter().enumerate() {
+            rank[node as usize] =
+                i32::try_from(position).map_err(|_| malformed("layer too large"))?;
+        }
+    }
+    // Origin id, layer, rank.
+    let point_id = |node: u32| -> [u8; 13] {
+        let mut bytes = [0u8; 13];
+        bytes[..8].copy_from_slice(&graph.image_ids[node as usize].to_ne_bytes());
+        bytes[8] = links.level(node) as u8;
+        bytes[9..].copy_from_slice(&rank[node as usize].to_ne_bytes());
+        bytes
+    };
+    let dim = graph.vectors.dim();
+    let name = |suffix: &str| format!("{basename}.{suffix}");
+
+    let mut out = Sink::create(dir, name("hnsw.graph"))?;
+    out.put(&MAGIC_DESCRIPTION.to_ne_bytes())?;
+    out.put(&[
+        FULL_MODE,
+        u8::try_from(graph.params.max_nb_connection).unwrap_or(u8::MAX),
+    ])?;
+    out.put(&(1.0 / (graph.params.max_nb_connection as f64).ln()).to_ne_bytes())?;
+    out.put(&[MAX_LAYERS as u8])?;
+    out.size(graph.params.ef_construction)?;
+    out.size(links.len())?;
+    out.size(dim)?;
+    for type_name in [DISTANCE_NAME, std::any::type_name::<f32>()] {
+        out.size(type_name.len())?;
+        out.put(type_name.as_bytes())?;
+    }
+    out.put(&[MAX_LAYERS as u8])?;
+    for (layer, nodes) in by_layer.iter().enumerate() {
+        out.put(&MAGIC_LAYER.to_ne_bytes())?;
+        out.size(nodes.len())?;
+        for &node in nodes {
+            out.put(&MAGIC_POINT.to_ne_bytes())?;
+            out.put(&point_id(node))?;
+            let own = graph.vectors.padded(node as usize);
+            for list_layer in 0..MAX_LAYERS {
+                let list: &[u32] = if list_layer <= layer {
+                    links.neighbours(node, list_layer)
+                } else {
+                    &[]
+                };
+                out.size(list.len())?;
+                for &neighbour in list {
+                    out.put(&point_id(neighbour))?;
+                    // hnsw_rs' distance: 1 - cosine similarity, never below zero.
+                    let distance =
+                        (1.0 - dot(own, graph.vectors.padded(neighbour as usize))).max(0.0);
+                    out.put(&distance.to_ne_bytes())?;
+                }
+            }
+        }
+    }
+    out.put(&point_id(entry))?;
+    let graph_file = out.finish()?;
+
+    let mut out = Sink::create(dir, name("hnsw.data"))?;
+    out.put(&MAGIC_DATA.to_ne_bytes())?;
+    out.size(dim)?;
+    let mut row = Vec::with_capacity(dim * 4);
+    for &node in by_layer.iter().flatten() {
+        out.put(&MAGIC_DATA.to_ne_bytes())?;
+        out.put(&graph.image_ids[node as usize].to_ne_bytes())?;
+        out.size(dim * 4)?;
+        row.clear();
+        row.extend(
+            graph.vectors.padded(node as usize)[..dim]
+                .iter()
+                .flat_map(|v| v.to_ne_bytes()),
+        );
+        out.put(&row)?;
+    }
+    Ok(vec![graph_file, out.finish()?])
+}
+
+/// A new file, written through a buffer while counting and hashing its bytes.
+struct Sink {
+    name: String,
+    out: BufWriter<File>,
+    len: u64,
+    hasher: blake3::Hasher,
+}
+
+impl Sink {
+    fn create(dir: &Path, name: String) -> io::Result<Sink> {
+        Ok(Sink {
+            out: BufWriter::with_capacity(1 << 20, File::create(dir.join(&name))?),
+            name,
+            len: 0,
+            hasher: blake3::Hasher::new(),
+        })
+    }
+
+    fn put(&mut self, bytes: &[u8]) -> io::Result<()> {
+        self.hasher.update(bytes);
+        self.len += bytes.len() as u64;
+        self.out.write_all(bytes)
+    }
+
+    /// A `usize` as hnsw_rs writes it.
+    fn size(&mut self, value: usize) -> io::Result<()> {
+        self.put(&(value as u64).to_ne_bytes())
+    }
+
+    fn finish(self) -> io::Result<DumpFile> {
+        let file = self.out.into_inner().map_err(|error| error.into_error())?;
+        file.sync_all()?;
+        Ok(DumpFile {
+            name: self.name,
+            len: self.len,
+            blake3: *self.hasher.finalize().as_bytes(),
+        })
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use std::collections::{HashMap, HashSet};
 
-    use hnsw_rs::prelude::HnswIo;
+    use hnsw_rs::prelude::{AnnT, HnswIo};
     use rand::{Rng, SeedableRng};
     use rand_chacha::ChaCha8Rng;
 
     use super::*;
-    use crate::graph::Graph;
+    use crate::graph::{CosineDistance, Graph};
     use crate::types::HnswParams;
 
     const DIM: usize = 12;
 
-    fn graph(points: usize) -> (Graph, Vec<f32>) {
-        let mut rng = ChaCha8Rng::seed_from_u64(3);
-        let data: Vec<f32> = (0..points * DIM)
+    fn unit_rows(rng: &mut ChaCha8Rng, rows: usize) -> Vec<f32> {
+        let mut data: Vec<f32> = (0..rows * DIM)
             .map(|_| rng.random_range(-1.0..1.0))
             .collect();
+        for row in data.chunks_exact_mut(DIM) {
+            let norm = row.iter().map(|v| v * v).sum::<f32>().sqrt();
+            row.iter_mut().for_each(|v| *v /= norm);
+        }
+        data
+    }
+
+    fn graph(points: usize) -> (Graph, Vec<f32>) {
+        let data = unit_rows(&mut ChaCha8Rng::seed_from_u64(3), points);
         let items: Vec<(ImageId, &[f32])> = data
             .chunks_exact(DIM)
             .enumerate()
@@ -355,11 +488,12 @@ mod tests {
         (Graph::build(&HnswParams::default(), DIM, &items), data)
     }
 
-    /// Reference: hnsw_rs' own reload of the same dump.
+    /// Reference: hnsw_rs' own reload of the same dump holds the same points, vectors
+    /// and lists, and hnsw_rs' search on it finds the exact nearest neighbours.
     #[test]
     fn parsed_dump_equals_hnsw_rs_reload() {
         let dir = tempfile::tempdir().unwrap();
-        let (mut graph, _) = graph(3_000);
+        let (mut graph, data) = graph(3_000);
         let manifest = graph.dump(dir.path(), 1).unwrap();
         let parsed = read(dir.path(), &manifest, DIM).unwrap();
 
@@ -403,6 +537,26 @@ mod tests {
             parsed.links.level(entry),
             usize::from(reloaded.get_max_level_observed())
         );
+
+        // Exact top-10 by brute force against hnsw_rs' answers on the reloaded graph.
+        let queries = unit_rows(&mut ChaCha8Rng::seed_from_u64(4), 100);
+        let mut hits = 0;
+        for query in queries.chunks_exact(DIM) {
+            let mut exact: Vec<(f32, ImageId)> = data
+                .chunks_exact(DIM)
+                .enumerate()
+                .map(|(i, row)| (dot(query, row), 1_000 + 7 * i as ImageId))
+                .collect();
+            exact.sort_by(|a, b| b.0.total_cmp(&a.0));
+            let expected: HashSet<ImageId> = exact[..10].iter().map(|(_, id)| *id).collect();
+            hits += reloaded
+                .search_neighbours(query, 10, 64)
+                .iter()
+                .filter(|n| expected.contains(&(n.d_id as ImageId)))
+                .count();
+        }
+        let recall = hits as f64 / 1_000.0;
+        assert!(recall >= 0.95, "hnsw_rs recall@10 on our dump: {recall}");
     }
 
     #[test]

@@ -2,10 +2,12 @@
 //!
 //! A collection is a directory holding a sled database (image records, L2-normalised
 //! embeddings, roots, per-file errors, format version and model fingerprint) and the
-//! dumped HNSW graph (hnsw_rs, cosine distance) used for nearest-neighbour search.
+//! dumped HNSW graph (cosine similarity, in hnsw_rs' file layout) used for
+//! nearest-neighbour search.
 //! See [`Store`] for the consistency rules between the two.
 
 mod compact;
+mod construct;
 mod distance;
 mod dump;
 mod error;
@@ -15,6 +17,6 @@ mod store;
 mod types;
 
 pub use error::StoreError;
-pub use graph::{CosineDistance, Graph};
+pub use graph::Graph;
 pub use store::{Store, FORMAT_VERSION, OLDEST_READABLE_FORMAT};
 pub use types::{ChangeSet, FileError, HnswParams, ImageId, ImageRecord, ModelFingerprint, Upsert};

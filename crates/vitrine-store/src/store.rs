@@ -230,7 +230,7 @@ impl Store {
                 let items: Vec<(ImageId, &[f32])> =
                     vectors.iter().map(|(id, v)| (*id, v.as_slice())).collect();
                 store.index_was_loaded = true;
-                store.insert_into_graph(&items)?;
+                store.graph.insert(&items);
             }
             None => {
                 store.rebuild_graph()?;
@@ -468,18 +468,8 @@ impl Store {
             .iter()
             .map(|(id, v)| (*id, v.as_slice()))
             .collect();
-        self.insert_into_graph(&items)?;
+        self.graph.insert(&items);
         Ok(assigned)
-    }
-
-    /// Inserts committed embeddings into the graph; rebuilds the graph from sled when
-    /// hnsw_rs' structure had to be read from a dump that is no longer intact.
-    fn insert_into_graph(&mut self, items: &[(ImageId, &[f32])]) -> Result<(), StoreError> {
-        if let Err(failure) = self.graph.insert(items) {
-            warn!(store = %self.dir.display(), %failure, "rebuilding the hnsw index");
-            self.rebuild_graph()?;
-        }
-        Ok(())
     }
 
     pub fn errors(&self) -> Result<Vec<FileError>, StoreError> {
@@ -857,8 +847,8 @@ mod tests {
 
     #[test]
     fn self_similarity_is_one_without_panicking() {
-        // hnsw_rs' DistDot asserts 1 - dot >= 0; rounding makes dot > 1 for some unit
-        // vectors compared with themselves. Search for each stored vector exactly.
+        // Rounding makes dot > 1 for some unit vectors compared with themselves (which
+        // hnsw_rs' own distance asserts against). Search for each stored vector exactly.
         let dir = tempfile::tempdir().unwrap();
         let mut store = Store::create_or_open(dir.path(), &fingerprint()).unwrap();
         store.add_root(Path::new("/r")).unwrap();
