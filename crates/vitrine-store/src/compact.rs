@@ -1,12 +1,10 @@
-//! The search side of the HNSW graph: a compact, read-only copy of hnsw_rs' layers.
+//! The search side of the HNSW graph: a compact, read-only form of its layers.
 //!
-//! hnsw_rs keeps every node behind an `Arc`, every neighbour list behind an
-//! `Arc<RwLock<..>>` of `Arc`s, each vector in its own allocation, and hashes visited
-//! nodes into a map; a profile of its search showed most time waiting on the pointer
-//! chase from a neighbour to its id. Here nodes are dense `u32` numbers, neighbour
-//! lists are flat `u32` arrays (layer 0 in fixed-size slots, so the next node's list
-//! can be prefetched), all vectors sit in one 64-byte-aligned block, and the visited
-//! set is an array of generation stamps reused across queries.
+//! Nodes are dense `u32` numbers, neighbour lists are flat `u32` arrays (layer 0 in
+//! fixed-size slots, so the next node's list can be prefetched), all vectors sit in one
+//! 64-byte-aligned block, and the visited set is an array of generation stamps reused
+//! across queries. (The layout came from profiling hnsw_rs' search, whose time went to
+//! chasing pointers from a neighbour to its id.)
 //!
 //! The search is the one of Malkov & Yashunin (2018): greedy descent through the upper
 //! layers (Algorithm 5), then a beam search of width `ef` on layer 0 (Algorithm 2),
