@@ -22,4 +22,6 @@ pub enum EngineError {
     ModelNotCollectionModel { stored: String, loaded: String },
     #[error("invalid argument: {0}")]
     InvalidArgument(String),
+    #[error("near-duplicate verification was stopped (the service is shutting down)")]
+    VerificationStopped,
 }

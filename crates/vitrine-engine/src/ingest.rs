@@ -170,6 +170,10 @@ pub fn index_roots(
     }
     let saving = Instant::now();
     store.save_index()?;
+    if report.changed + report.removed > 0 {
+        let forgotten = store.forget_orphan_pair_notes()?;
+        tracing::debug!(forgotten, "pair notes on contents no image has any more");
+    }
     report.store_seconds += saving.elapsed().as_secs_f64();
     tracing::info!(elapsed_s = started.elapsed().as_secs_f64(), "{report}");
     Ok(report)

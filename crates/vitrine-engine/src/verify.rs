@@ -42,6 +42,7 @@
 
 use std::collections::HashMap;
 use std::path::PathBuf;
+use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 
 use rand::{Rng, SeedableRng};
@@ -742,6 +743,7 @@ pub struct PairVerifier {
     options: VerifyOptions,
     evidence: Mutex<HashMap<[u8; 32], Arc<ImageEvidence>>>,
     verdicts: Mutex<HashMap<([u8; 32], [u8; 32]), PairCheck>>,
+    stopped: AtomicBool,
 }
 
 impl PairVerifier {
@@ -751,7 +753,15 @@ impl PairVerifier {
             options,
             evidence: Mutex::new(HashMap::new()),
             verdicts: Mutex::new(HashMap::new()),
+            stopped: AtomicBool::new(false),
         }
+    }
+
+    /// Makes the computation of evidence, now and later, fail with
+    /// [`EngineError::VerificationStopped`] at its next batch: a service shutting down
+    /// stops a long verification instead of waiting for it.
+    pub fn stop(&self) {
+        self.stopped.store(true, Ordering::Relaxed);
     }
 
     /// The model's input for a file, decoded at the size the model needs.
@@ -789,6 +799,9 @@ impl PairVerifier {
             .filter(|file| self.cached_evidence(file).is_none())
             .collect();
         for chunk in missing.chunks(PREPARE_BATCH) {
+            if self.stopped.load(Ordering::Relaxed) {
+                return Err(EngineError::VerificationStopped);
+            }
             let prepared: Vec<(&VerifiedFile, PreparedImage)> = chunk
                 .par_iter()
                 .filter_map(|file| Some((*file, self.prepared(file).ok()?)))

@@ -13,7 +13,7 @@
 //! whole-collection analyses wait a bounded time and then answer 503.
 
 use std::path::PathBuf;
-use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
 use std::sync::{Arc, OnceLock};
 use std::time::Duration;
 
@@ -108,6 +108,8 @@ pub struct Collection {
     /// Lives as long as the collection, so that pair verdicts outlast one
     /// query: another threshold or a new generation re-checks only new pairs.
     verifier: OnceLock<Arc<PairVerifier>>,
+    /// Set when the service shuts down: verification stops, now and later.
+    verification_stopped: AtomicBool,
     /// Clusterings by (requested number of clusters, seed).
     pub clusters: Memo<(Option<usize>, u64), ClusterReport>,
     /// Label suggestions by (k, min_confidence bits).
@@ -129,6 +131,7 @@ impl Collection {
             duplicates: Memo::default(),
             leaks: Memo::default(),
             verifier: OnceLock::new(),
+            verification_stopped: AtomicBool::new(false),
             clusters: Memo::default(),
             label_suggestions: Memo::default(),
             label_suspects: Memo::default(),
@@ -138,9 +141,27 @@ impl Collection {
     /// The collection's near-duplicate verifier, made with `encoder` on first use
     /// (the service has one model, checked against the collection by the caller).
     pub fn verifier(&self, encoder: Arc<Encoder>) -> Arc<PairVerifier> {
-        self.verifier
-            .get_or_init(|| Arc::new(PairVerifier::new(encoder, VerifyOptions::default())))
-            .clone()
+        let verifier = self
+            .verifier
+            .get_or_init(|| Arc::new(PairVerifier::new(encoder, VerifyOptions::default())));
+        // A verifier made while the service stops is stopped too.
+        if self.verification_stopped.load(Ordering::SeqCst) {
+            verifier.stop();
+        }
+        verifier.clone()
+    }
+
+    /// Stops verification in this collection, now and later (see
+    /// [`PairVerifier::stop`]).
+    pub fn stop_verification(&self) {
+        self.verification_stopped.store(true, Ordering::SeqCst);
+        if let Some(verifier) = self.verifier.get() {
+            verifier.stop();
+        }
+    }
+
+    pub fn verification_stopped(&self) -> bool {
+        self.verification_stopped.load(Ordering::SeqCst)
     }
 
     /// The current snapshot; cheap.

@@ -149,6 +149,7 @@ pub struct Service {
     server: Server,
     addrs: Vec<SocketAddr>,
     state: web::Data<AppState>,
+    precompute: Option<std::thread::JoinHandle<()>>,
 }
 
 impl Service {
@@ -185,13 +186,16 @@ impl Service {
         let addrs = server.addrs();
         // Only once the server is certain to start: the thread keeps the
         // collections open while it works.
-        if settings.precompute {
-            api::analyses::precompute_reports(state.clone());
-        }
+        let precompute = if settings.precompute {
+            api::analyses::precompute_reports(state.clone())
+        } else {
+            None
+        };
         Ok(Self {
             server: server.run(),
             addrs,
             state,
+            precompute,
         })
     }
 
@@ -206,13 +210,25 @@ impl Service {
 
     /// Serves until stopped (SIGINT, SIGTERM or the handle): in-flight
     /// requests get `shutdown_timeout_s` to finish, then running background
-    /// jobs are waited for so that no index run stops between two commits.
+    /// jobs are waited for so that no index run stops between two commits,
+    /// and precomputation is stopped and waited for, so that the collections
+    /// are closed when this returns.
     pub async fn run(self) -> Result<(), ServiceError> {
         let outcome = self.server.await.map_err(ServiceError::Run);
+        for collection in self.state.collections.values() {
+            collection.stop_verification();
+        }
         let jobs = self.state.jobs.clone();
+        let precompute = self.precompute;
         // Joining threads blocks: keep it off the runtime's thread.
-        if let Err(err) = web::block(move || jobs.shut_down()).await {
-            tracing::error!("could not wait for background jobs: {err}");
+        let joined = web::block(move || {
+            jobs.shut_down();
+            precompute.map(std::thread::JoinHandle::join)
+        });
+        match joined.await {
+            Err(err) => tracing::error!("could not wait for background work: {err}"),
+            Ok(Some(Err(_))) => tracing::error!("report precomputation panicked"),
+            Ok(_) => {}
         }
         outcome
     }

@@ -156,6 +156,29 @@ impl Store {
         self.db.apply_batch(batch).map_err(self.db_error())
     }
 
+    /// Deletes the pair notes that name a file content no image has any more: a changed
+    /// or removed file leaves its notes behind, which nothing would read again. Returns
+    /// how many were deleted.
+    pub fn forget_orphan_pair_notes(&self) -> Result<usize, StoreError> {
+        let mut live = HashSet::new();
+        for entry in self.records() {
+            live.insert(entry?.1.content_hash);
+        }
+        let names_live = |hash: &[u8]| <[u8; 32]>::try_from(hash).is_ok_and(|h| live.contains(&h));
+        let mut batch = sled::Batch::default();
+        let mut forgotten = 0;
+        for entry in self.db.scan_prefix([keys::PAIR_NOTE]) {
+            let (key, _) = entry.map_err(self.db_error())?;
+            let kept = key.len() == 73 && names_live(&key[9..41]) && names_live(&key[41..]);
+            if !kept {
+                batch.remove(key);
+                forgotten += 1;
+            }
+        }
+        self.db.apply_batch(batch).map_err(self.db_error())?;
+        Ok(forgotten)
+    }
+
     /// Reads everything but the records into memory and brings the graph in line with
     /// sled: loads the recorded dump when it is intact, otherwise rebuilds.
     fn load(dir: &Path, db: sled::Db, params: HnswParams) -> Result<Store, StoreError> {

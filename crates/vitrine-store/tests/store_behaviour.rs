@@ -419,6 +419,32 @@ fn content_hash_finds_an_existing_embedding() {
 }
 
 #[test]
+fn pair_notes_on_contents_no_image_has_are_forgotten() {
+    let (data, _) = dataset(3);
+    let dir = tempfile::tempdir().unwrap();
+    let (mut store, ids) = populated_store(dir.path(), &data, DIM);
+    let hash = |i: usize| record(i).content_hash;
+    let kind = *b"testkind";
+    let gone = [7u8; 32];
+    let notes = [
+        (hash(0), hash(1), b"kept".to_vec()),
+        (hash(1), hash(2), b"image 2 removed".to_vec()),
+        (hash(0), gone, b"never indexed".to_vec()),
+    ];
+    store.put_pair_notes(&kind, &notes).unwrap();
+    remove(&mut store, &ids[2..]);
+
+    assert_eq!(store.forget_orphan_pair_notes().unwrap(), 2);
+    assert_eq!(
+        store.pair_note(&kind, &hash(0), &hash(1)).unwrap(),
+        Some(b"kept".to_vec())
+    );
+    assert_eq!(store.pair_note(&kind, &hash(1), &hash(2)).unwrap(), None);
+    assert_eq!(store.pair_note(&kind, &hash(0), &gone).unwrap(), None);
+    assert_eq!(store.forget_orphan_pair_notes().unwrap(), 0);
+}
+
+#[test]
 fn file_errors_are_recorded_cleared_and_superseded() {
     let (data, _) = dataset(1);
     let dir = tempfile::tempdir().unwrap();

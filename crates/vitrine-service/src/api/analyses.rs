@@ -320,11 +320,16 @@ pub(crate) fn leak_report(
 /// Computes each collection's default duplicate and leak reports on a
 /// background thread, so that the first reader (often the page) finds them
 /// ready instead of waiting for verification to decode every candidate image.
-pub fn precompute_reports(state: web::Data<AppState>) {
+/// The thread holds the collections open until it ends: a service stopping
+/// stops verification (`Collection::stop_verification`) and then joins it.
+pub fn precompute_reports(state: web::Data<AppState>) -> Option<std::thread::JoinHandle<()>> {
     let spawned = std::thread::Builder::new()
         .name("vitrine-precompute".into())
         .spawn(move || {
             for collection in state.collections.values() {
+                if collection.verification_stopped() {
+                    return;
+                }
                 let started = std::time::Instant::now();
                 let leak_options = LeakOptions {
                     evaluated_splits: Vec::new(),
@@ -346,9 +351,9 @@ pub fn precompute_reports(state: web::Data<AppState>) {
                 }
             }
         });
-    if let Err(err) = spawned {
-        tracing::warn!("could not start precomputing reports: {err}");
-    }
+    spawned
+        .inspect_err(|err| tracing::warn!("could not start precomputing reports: {err}"))
+        .ok()
 }
 
 /// Groups of identical and near-duplicate images (a report: nothing is deleted).

@@ -186,9 +186,8 @@ pub fn test_settings() -> ServeSettings {
         max_k: 50,
         max_page_size: 100,
         workers: 4,
-        // Tests stop and start servers on one store within one process; a
-        // precomputing thread would keep the store open past a server's stop.
-        // The page tests run it, through the binary.
+        // Background verification would compete with every test for the two
+        // cores; the page tests run it, through the binary.
         precompute: false,
         ..ServeSettings::default()
     }
