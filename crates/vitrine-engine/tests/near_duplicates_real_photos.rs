@@ -24,6 +24,7 @@ use vitrine_engine::catalog::Catalog;
 use vitrine_engine::duplicates::{find_duplicates, DuplicateOptions, DuplicateReport};
 use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions, NoProgress};
 use vitrine_engine::verify::{PairVerifier, VerifiedFile, VerifyOptions};
+use vitrine_engine::EngineError;
 use vitrine_imaging::{decode_path, DecodeOptions};
 use vitrine_model::encoder::Encoder;
 use vitrine_model::fetch::{default_model_root, DEFAULT_WHEEL};
@@ -154,6 +155,16 @@ fn mild_copies_of_real_photos_are_found_and_distinct_photos_kept_apart() -> Resu
     assert_eq!(catalog.len(), photos.len() * (1 + MILD_EDITS.len()));
 
     let options = DuplicateOptions::default();
+    // A stopped verifier (a service shutting down) fails instead of computing
+    // evidence; the verifiers below then judge every pair from scratch.
+    let stopped = PairVerifier::new(Arc::clone(&encoder), VerifyOptions::default());
+    stopped.stop();
+    let outcome = find_duplicates(&store, &catalog, &options, Some(&stopped));
+    assert!(
+        matches!(outcome, Err(EngineError::VerificationStopped)),
+        "{:?}",
+        outcome.map(|report| report.verification)
+    );
     let verifier = PairVerifier::new(Arc::clone(&encoder), VerifyOptions::default());
     for (name, verifier) in [("cosine threshold", None), ("verified", Some(&verifier))] {
         let report = find_duplicates(&store, &catalog, &options, verifier)?;
