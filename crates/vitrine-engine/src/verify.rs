@@ -731,6 +731,9 @@ pub struct VerifiedFile {
     pub content_hash: [u8; 32],
 }
 
+/// Verdicts by the pair's content hashes, in canonical order.
+type Verdicts = HashMap<([u8; 32], [u8; 32]), PairCheck>;
+
 /// Verifies pairs of indexed files.
 ///
 /// Verdicts are remembered for the verifier's lifetime (a few bytes per pair),
@@ -742,7 +745,7 @@ pub struct PairVerifier {
     encoder: Arc<Encoder>,
     options: VerifyOptions,
     evidence: Mutex<HashMap<[u8; 32], Arc<ImageEvidence>>>,
-    verdicts: Mutex<HashMap<([u8; 32], [u8; 32]), PairCheck>>,
+    verdicts: Mutex<Verdicts>,
     stopped: AtomicBool,
 }
 

@@ -147,7 +147,7 @@ fn mild_copies_of_real_photos_are_found_and_distinct_photos_kept_apart() -> Resu
     index_roots(
         &mut store,
         &encoder,
-        &[folder.clone()],
+        std::slice::from_ref(&folder),
         &IndexOptions::default(),
         &NoProgress,
     )?;
