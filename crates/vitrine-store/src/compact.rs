@@ -278,7 +278,7 @@ impl LinksBuilder {
         let links = &mut self.links;
         links
             .levels
-            .push(u8::try_from(level).expect("hnsw_rs has at most 16 layers"));
+            .push(u8::try_from(level).expect("the dump layout has at most 16 layers"));
         if level == 0 {
             links.upper_first.push(NONE);
         } else {

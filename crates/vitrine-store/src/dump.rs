@@ -28,9 +28,9 @@ const MAGIC_POINT: u32 = 0x000a_678f;
 const MAGIC_DATA: u32 = 0xa67f_0000;
 /// `file_dump` always writes full mode (point ids with every neighbour).
 const FULL_MODE: u8 = 1;
-/// The distance's type name, which hnsw_rs checks on loading. Graphs were built by
-/// hnsw_rs with a distance type of this name until format 5; the name stays so that
-/// those dumps still load, and so that hnsw_rs loads ours with `graph::CosineDistance`.
+/// The distance's type name, which hnsw_rs checks on loading. Graphs used to be built
+/// by hnsw_rs with a distance type of this name; the name stays so that those dumps
+/// still load, and so that hnsw_rs loads ours with `graph::CosineDistance`.
 const DISTANCE_NAME: &str = "vitrine_store::graph::CosineDistance";
 /// Longer neighbour lists than hnsw_rs can make (it caps M at 256, layer 0 at 2M)
 /// mean a malformed file; refusing them bounds allocations.

@@ -36,7 +36,7 @@ impl hnsw_rs::anndists::dist::distances::Distance<f32> for CosineDistance {
 }
 
 /// One dump file as recorded in the manifest: enough to detect a missing, truncated
-/// or altered file before hnsw_rs reads it (its loader panics on malformed input).
+/// or altered file before it is read.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
 pub struct DumpFile {
     pub name: String,
