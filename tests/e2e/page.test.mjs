@@ -15,6 +15,7 @@ import fs from 'node:fs';
 import os from 'node:os';
 import path from 'node:path';
 
+import { bmpFile, tiffFile } from './image-files.mjs';
 import {
   artifactsDir,
   assertLoopbackOnly,
@@ -35,17 +36,22 @@ let page;
 const requests = [];
 const pageErrors = [];
 
+/** The API address of the served collection's `suffix`. */
+async function collectionUrl(suffix) {
+  const collections = await (await fetch(`${server.url}/api/v1/collections`)).json();
+  return `${server.url}/api/v1/collections/${encodeURIComponent(collections.collections[0].name)}${suffix}`;
+}
+
 /**
  * Waits until the service has a whole-collection answer ready. The first
  * verified report decodes every image of a candidate pair (the service starts
  * on it when it starts; the page shows its loading state meanwhile).
  */
 async function untilAnswered(suffix, limitMs = 300000) {
-  const collections = await (await fetch(`${server.url}/api/v1/collections`)).json();
-  const name = encodeURIComponent(collections.collections[0].name);
+  const url = await collectionUrl(suffix);
   const started = Date.now();
   for (;;) {
-    const response = await fetch(`${server.url}/api/v1/collections/${name}${suffix}`);
+    const response = await fetch(url);
     if (response.ok) return;
     if (Date.now() - started > limitMs) throw new Error(`${suffix} still unanswered after ${limitMs} ms: ${response.status}`);
     await new Promise((resolve) => setTimeout(resolve, 1000));
@@ -79,6 +85,72 @@ function searchCase() {
   const candidates = truth.near_duplicates.filter((n) => !elsewhere.has(n.original) && !elsewhere.has(n.edited));
   // A re-encoded JPEG is the mildest planted edit.
   return candidates.find((n) => n.edit === 'jpeg-reencode') || candidates[0];
+}
+
+/** A demo image the generator made no copy of: no other indexed image looks more like it than itself. */
+function uncopiedImage() {
+  const planted = plantedSets();
+  const broken = new Set(truth.broken.map((b) => b.path));
+  return truth.files.map((f) => f.path).find((p) => !planted.has(p) && !broken.has(p));
+}
+
+/** An indexed image's pixels as the browser decodes its thumbnail: { width, height, rgba }. */
+async function thumbnailPixels(file) {
+  const listing = await (await fetch(await collectionUrl(`/images?prefix=${encodeURIComponent(file)}`))).json();
+  const { id } = listing.items.find((item) => item.path === file);
+  const jpeg = Buffer.from(await (await fetch(await collectionUrl(`/images/${id}/thumbnail?size=320`))).arrayBuffer());
+  return page.evaluate(async (base64) => {
+    const bytes = Uint8Array.from(atob(base64), (c) => c.charCodeAt(0));
+    const bitmap = await createImageBitmap(new Blob([bytes], { type: 'image/jpeg' }));
+    const context = new OffscreenCanvas(bitmap.width, bitmap.height).getContext('2d');
+    context.drawImage(bitmap, 0, 0);
+    const { width, height, data } = context.getImageData(0, 0, bitmap.width, bitmap.height);
+    return { width, height, rgba: Array.from(data) };
+  }, jpeg.toString('base64'));
+}
+
+/** Opens Search, lets `give` hand it a file; resolves with the paths of the hits, failing on an error shown instead. */
+async function searchWithUpload(give) {
+  await page.goto(`${server.url}/#/search`);
+  await page.waitForSelector('[data-testid="dropzone"]');
+  await give();
+  await page.waitForSelector('[data-testid="hits"] .card, .results [data-state="error"]');
+  const error = await page.$('.results [data-state="error"]');
+  assert.equal(error && await error.textContent(), null, 'the upload is searched with');
+  return paths('[data-testid="hits"] .card');
+}
+
+/** Drops a file without a MIME type on the drop zone, as browsers do with formats they do not know; resolves with its type. */
+async function dropUntyped(name, buffer) {
+  return page.evaluate(({ fileName, base64 }) => {
+    const bytes = Uint8Array.from(atob(base64), (c) => c.charCodeAt(0));
+    const transfer = new DataTransfer();
+    transfer.items.add(new File([bytes], fileName));
+    const zone = document.querySelector('[data-testid="dropzone"]');
+    zone.dispatchEvent(new DragEvent('drop', { dataTransfer: transfer, bubbles: true, cancelable: true }));
+    return transfer.files[0].type;
+  }, { fileName: name, base64: buffer.toString('base64') });
+}
+
+/** Which view the page shows once it settles on one: 'search', or 'missing' for its page-does-not-exist notice. */
+async function settledView() {
+  const shown = await page.waitForFunction(() => {
+    if (document.querySelector('#view [data-testid="dropzone"]')) return 'search';
+    const notice = document.querySelector('#view [data-state="empty"] h2');
+    return notice && notice.textContent === 'This page does not exist.' ? 'missing' : null;
+  });
+  return shown.jsonValue();
+}
+
+/** Where the leak pairs and their list sit on screen: { list: {left, right}, pairs: [{top, left, right}] } in page order. */
+async function leakBoxes() {
+  return page.$eval('[data-testid="leaks"]', (list) => {
+    const box = (el) => {
+      const r = el.getBoundingClientRect();
+      return { top: Math.round(r.top), left: Math.round(r.left), right: Math.round(r.right) };
+    };
+    return { list: box(list), pairs: Array.from(list.children, box) };
+  });
 }
 
 /** Saves a screenshot once the images on screen have loaded. */
@@ -135,6 +207,38 @@ test('search: an uploaded original finds its planted near-duplicate first', asyn
   const alt = await page.$eval('[data-testid="hits"] .card img', (el) => el.alt);
   assert.match(alt, /split .+, label .+/, 'thumbnails carry path, split and label as alt text');
   await shot('search');
+});
+
+test('search: a BMP upload finds the indexed image it was made from', async () => {
+  const source = uncopiedImage();
+  const { width, height, rgba } = await thumbnailPixels(source);
+  const bmp = { name: 'query.bmp', mimeType: 'image/bmp', buffer: bmpFile(width, height, rgba) };
+  const hits = await searchWithUpload(() => page.setInputFiles('#query-file', bmp));
+  assert.equal(hits[0], source, `first hit; got ${hits.slice(0, 3).join(', ')}`);
+  const accept = (await page.getAttribute('#query-file', 'accept')).split(',');
+  for (const type of ['image/gif', 'image/bmp', 'image/tiff']) assert.ok(accept.includes(type), `the file picker offers ${type}`);
+});
+
+test('search: a dropped TIFF without a MIME type is taken by its file name', async () => {
+  const source = uncopiedImage();
+  const { width, height, rgba } = await thumbnailPixels(source);
+  let type;
+  const hits = await searchWithUpload(async () => { type = await dropUntyped('query.tif', tiffFile(width, height, rgba)); });
+  assert.equal(type, '', 'the dropped file has no type');
+  assert.equal(hits[0], source, `first hit; got ${hits.slice(0, 3).join(', ')}`);
+  // Chromium does not display TIFF: the preview says so rather than showing a broken image.
+  await page.waitForSelector('.query-preview [data-testid="no-preview"]');
+});
+
+test('routing: "#/" opens the search view, on load and on a hash change', async () => {
+  await page.goto('about:blank');
+  await page.goto(`${server.url}/#/`);
+  assert.equal(await settledView(), 'search', 'a page opened at #/');
+  assert.equal(await page.getAttribute('.views a[data-view="search"]', 'aria-current'), 'page');
+  await page.evaluate(() => { location.hash = '#/clusters'; });
+  await page.waitForSelector('#view [data-testid="dropzone"]', { state: 'detached' });
+  await page.evaluate(() => { location.hash = '#/'; });
+  assert.equal(await settledView(), 'search', 'a hash changed to #/');
 });
 
 test('duplicates: a planted exact-copy group is shown with one suggested keeper', async () => {
@@ -217,6 +321,32 @@ test('leakage: a planted leak is shown as a pair with the per-split summary', as
   await page.goto(`${server.url}/#/leakage`);
   await page.waitForSelector('[data-testid="leaks"] .review-item');
   await shot('leakage');
+});
+
+test('leakage: pairs share rows on a wide screen and stack on a narrow one', async () => {
+  await untilAnswered('/leaks?per_page=1');
+  try {
+    await page.setViewportSize({ width: 1600, height: 900 });
+    await page.goto(`${server.url}/#/leakage`);
+    await page.waitForSelector('[data-testid="leaks"] .review-item');
+    const wide = await leakBoxes();
+    // Ground truth: the demo generator planted several leaks.
+    assert.ok(wide.pairs.length >= 2, `at least two pairs are listed (${wide.pairs.length})`);
+    assert.equal(wide.pairs[1].top, wide.pairs[0].top, 'the first two pairs share a row at 1600 px');
+    const firstRow = wide.pairs.filter((p) => p.top === wide.pairs[0].top);
+    assert.equal(firstRow[0].left, wide.list.left, 'the first row starts at the list\'s left edge');
+    assert.ok(Math.abs(firstRow[firstRow.length - 1].right - wide.list.right) <= 1,
+      `the first row reaches the list's right edge (${firstRow[firstRow.length - 1].right} of ${wide.list.right})`);
+    await shot('leakage-wide');
+
+    await page.setViewportSize({ width: 500, height: 900 });
+    const narrow = await leakBoxes();
+    assert.ok(narrow.pairs.every((p, i) => i === 0 || p.top > narrow.pairs[i - 1].top),
+      `one pair per row at 500 px (tops ${narrow.pairs.map((p) => p.top).join(', ')})`);
+    assert.ok(narrow.pairs.every((p) => p.right <= narrow.list.right) && narrow.list.right <= 500, 'no pair runs off a 500 px screen');
+  } finally {
+    await page.setViewportSize({ width: 1360, height: 900 });
+  }
 });
 
 test('clusters: the overview lists clusters and one opens with its members', async () => {

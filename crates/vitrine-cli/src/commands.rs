@@ -14,9 +14,9 @@ use vitrine_engine::catalog::Catalog;
 use vitrine_engine::clusters::{cluster_collection, ClusterOptions, ClusterReport};
 use vitrine_engine::duplicates::{
     find_duplicates, find_leaks_verified, DuplicateGroup, DuplicateOptions, DuplicateReport,
-    LeakOptions, LeakReport,
+    DuplicateTier, LeakOptions, LeakReport,
 };
-use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions};
+use vitrine_engine::ingest::{fingerprint_of, index_roots, resolve_roots, IndexOptions};
 use vitrine_engine::labels::{
     find_label_suspects, suggest_labels, LabelOptions, LabelSuggestion, LabelSuspect,
 };
@@ -33,7 +33,7 @@ use vitrine_model::fetch::{default_model_root, fetch_default_model, resolve_mode
 use vitrine_store::Store;
 
 use crate::output::{emit, opt, score, OutputArgs, Report};
-use crate::progress::Progress;
+use crate::progress::StderrProgress;
 use crate::settings::Settings;
 
 /// Embeddings, nearest neighbours, duplicates and split leakage for image collections.
@@ -350,15 +350,18 @@ impl Session {
         })
     }
 
-    /// The encoder for the finer near-duplicate check, when it is wanted and
-    /// the collection's model is at hand; otherwise near pairs are judged on
-    /// the threshold alone and the report says so.
-    fn verification_encoder(&self, store: &Store, options: &DuplicateOptions) -> Option<Encoder> {
+    /// The finer near-duplicate check, showing its progress, when it is
+    /// wanted and the collection's model is at hand; otherwise near pairs are
+    /// judged on the threshold alone and the report says so.
+    fn verifier(&self, store: &Store, options: &DuplicateOptions) -> Option<PairVerifier> {
         if !options.verify {
             return None;
         }
         match self.encoder() {
-            Ok(encoder) if fingerprint_of(&encoder) == *store.fingerprint() => Some(encoder),
+            Ok(encoder) if fingerprint_of(&encoder) == *store.fingerprint() => Some(
+                PairVerifier::new(Arc::new(encoder), VerifyOptions::default())
+                    .with_progress(StderrProgress::new()),
+            ),
             Ok(_) => {
                 eprintln!(
                     "note: the loaded model is not the collection's; near pairs are not verified"
@@ -398,9 +401,7 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
             let store = ctx.open_store()?;
             let catalog = Catalog::load(&store)?;
             let options = ctx.duplicate_options(&threshold)?;
-            let verifier = ctx
-                .verification_encoder(&store, &options)
-                .map(|e| PairVerifier::new(Arc::new(e), VerifyOptions::default()));
+            let verifier = ctx.verifier(&store, &options);
             let report = find_duplicates(&store, &catalog, &options, verifier.as_ref())?;
             emit(&DuplicateTable(report), &output)?;
         }
@@ -418,9 +419,7 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
                     .unwrap_or_else(|| ctx.settings.queries.reference_split.clone()),
                 duplicates: ctx.duplicate_options(&threshold)?,
             };
-            let verifier = ctx
-                .verification_encoder(&store, &options.duplicates)
-                .map(|e| PairVerifier::new(Arc::new(e), VerifyOptions::default()));
+            let verifier = ctx.verifier(&store, &options.duplicates);
             let report = find_leaks_verified(&store, &catalog, &options, verifier.as_ref())?;
             emit(&LeakTable(report), &output)?;
         }
@@ -483,7 +482,8 @@ fn embed_file(encoder: &Encoder, settings: &Settings, file: &Path) -> Result<Vec
         target_shorter_side: Some(spec.resize_shorter),
         ..decode_options(settings)
     };
-    let decoded = decode_path(file, &options).with_context(|| format!("{}", file.display()))?;
+    // The decoder's errors name the file already.
+    let decoded = decode_path(file, &options)?;
     let prepared = preprocess(&decoded.rgb, spec)?;
     let mut embeddings = encoder.embed(&[&prepared])?;
     Ok(embeddings.remove(0))
@@ -531,9 +531,6 @@ fn embed_files(ctx: &Session, files: &[PathBuf]) -> Result<()> {
 
 fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
     let encoder = ctx.encoder()?;
-    let fingerprint = fingerprint_of(&encoder);
-    let mut store = Store::create_or_open(&ctx.global.store, &fingerprint)
-        .with_context(|| format!("while opening collection {}", ctx.global.store.display()))?;
     let split_rule = match &args.manifest {
         Some(path) => SplitRule::from_manifest(path)?,
         None => SplitRule::FolderConvention,
@@ -550,16 +547,25 @@ fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
         batch_size: args.batch_size.unwrap_or(ctx.settings.index.batch_size),
         commit_every: ctx.settings.index.commit_every,
     };
+    // index_roots checks the roots again; checking them before the store is
+    // created means a refused run leaves no new, empty store behind.
+    resolve_roots(&args.roots, &options)?;
+    let mut store = Store::create_or_open(&ctx.global.store, &fingerprint_of(&encoder))
+        .with_context(|| format!("while opening collection {}", ctx.global.store.display()))?;
     let started = std::time::Instant::now();
     let report = index_roots(
         &mut store,
         &encoder,
         &args.roots,
         &options,
-        &Progress::for_stderr(),
+        &StderrProgress::new(),
     )?;
+    let skipped_entries = report
+        .skipped_entries()
+        .map(|skipped| format!(", {skipped}"))
+        .unwrap_or_default();
     println!(
-        "{report} ({} embedded by reuse of identical bytes, {} non-image files skipped) in {:.1} s; {} images in the collection",
+        "{report} ({} embedded by reuse of identical bytes, {} non-image files skipped{skipped_entries}) in {:.1} s; {} images in the collection",
         report.reused_embeddings,
         report.skipped_non_images,
         started.elapsed().as_secs_f64(),
@@ -571,6 +577,9 @@ fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
     );
     if report.failed > 0 {
         println!("see `vitrine status --errors` for the files that failed");
+    }
+    if report.skipped_symlinks > 0 {
+        println!("symbolic links are not followed; --follow-symlinks follows them");
     }
     Ok(())
 }
@@ -584,6 +593,9 @@ struct StatusReport {
     dimension: usize,
     pooling: String,
     roots: Vec<String>,
+    /// Every root with its image count: a root stays recorded when it holds
+    /// none (its failed files are recorded against it, and a rescan revisits it).
+    images_per_root: BTreeMap<String, usize>,
     splits: BTreeMap<String, usize>,
     labels: BTreeMap<String, usize>,
     index_disk_bytes: u64,
@@ -638,7 +650,15 @@ impl Report for StatusReport {
                 self.index_disk_bytes as f64 / (1 << 20) as f64
             ),
         ];
-        lines.extend(self.roots.iter().map(|r| format!("root: {r}")));
+        lines.extend(
+            self.roots
+                .iter()
+                .map(|root| match self.images_per_root[root] {
+                    0 => format!("root: {root} (no images)"),
+                    1 => format!("root: {root} (1 image)"),
+                    n => format!("root: {root} ({n} images)"),
+                }),
+        );
         let splits: Vec<String> = self
             .splits
             .iter()
@@ -653,10 +673,12 @@ impl Report for StatusReport {
 fn status(ctx: &Session, list_errors: bool, output: &OutputArgs) -> Result<()> {
     let store = ctx.open_store()?;
     let roots: BTreeMap<u32, PathBuf> = store.roots().into_iter().collect();
+    let mut images_per_root_id: BTreeMap<u32, usize> = roots.keys().map(|&id| (id, 0)).collect();
     let mut splits = BTreeMap::new();
     let mut labels = BTreeMap::new();
     for entry in store.records() {
         let (_, record) = entry?;
+        *images_per_root_id.entry(record.root).or_insert(0) += 1;
         let split = record.split.unwrap_or_else(|| "(none)".into());
         let label = record.label.unwrap_or_else(|| "(none)".into());
         *labels.entry(format!("{split}/{label}")).or_insert(0) += 1;
@@ -672,6 +694,10 @@ fn status(ctx: &Session, list_errors: bool, output: &OutputArgs) -> Result<()> {
         dimension: fingerprint.dim,
         pooling: fingerprint.pooling.clone(),
         roots: roots.values().map(|p| p.display().to_string()).collect(),
+        images_per_root: roots
+            .iter()
+            .map(|(id, path)| (path.display().to_string(), images_per_root_id[id]))
+            .collect(),
         splits,
         labels,
         index_disk_bytes: store.index_disk_bytes(),
@@ -758,6 +784,10 @@ fn similar(ctx: &Session, args: &SimilarArgs) -> Result<()> {
     emit(&NeighbourTable(neighbours), &args.output)
 }
 
+fn tier_name(tier: DuplicateTier) -> String {
+    format!("{tier:?}").to_lowercase()
+}
+
 struct DuplicateTable(DuplicateReport);
 
 impl Report for DuplicateTable {
@@ -773,6 +803,7 @@ impl Report for DuplicateTable {
             "group",
             "keep",
             "tier",
+            "copy of",
             "similarity",
             "id",
             "split",
@@ -791,7 +822,8 @@ impl Report for DuplicateTable {
                     } else {
                         String::new()
                     },
-                    format!("{:?}", member.tier).to_lowercase(),
+                    member.tier.map(tier_name).unwrap_or_default(),
+                    member.copy_of.map(|id| id.to_string()).unwrap_or_default(),
                     score(member.similarity),
                     member.image.id.to_string(),
                     opt(&member.image.split),
@@ -847,7 +879,7 @@ impl Report for LeakTable {
                 vec![
                     opt(&leak.image.split),
                     leak.image.path.clone(),
-                    format!("{:?}", leak.tier).to_lowercase(),
+                    tier_name(leak.tier),
                     score(leak.similarity),
                     leak.counterpart.path.clone(),
                 ]
@@ -919,13 +951,13 @@ impl Report for ClusterTable {
             .collect()
     }
     fn preamble(&self) -> Vec<String> {
-        vec![
-            format!(
-                "{} clusters (spherical k-means, seed {})",
-                self.0.n_clusters, self.0.seed
-            ),
-            String::new(),
-        ]
+        let mut lines = vec![format!(
+            "{} clusters (spherical k-means, seed {})",
+            self.0.n_clusters, self.0.seed
+        )];
+        lines.extend(self.0.note.iter().map(|note| format!("note: {note}")));
+        lines.push(String::new());
+        lines
     }
 }
 
@@ -944,7 +976,13 @@ fn calibrate_thresholds(
         ..CalibrationOptions::default()
     };
     emit(
-        &CalibrationTable(calibrate(&store, &catalog, &encoder, &options)?),
+        &CalibrationTable(calibrate(
+            &store,
+            &catalog,
+            &encoder,
+            &options,
+            &StderrProgress::new(),
+        )?),
         output,
     )
 }

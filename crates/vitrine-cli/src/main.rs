@@ -28,7 +28,8 @@ fn main() -> ExitCode {
     tracing_subscriber::fmt()
         .with_env_filter(
             tracing_subscriber::EnvFilter::try_from_env("VITRINE_LOG")
-                .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("warn")),
+                // sled logs its own failures at ERROR; vitrine reports them itself.
+                .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new("warn,sled=off")),
         )
         .with_writer(io::stderr)
         .init();
@@ -43,7 +44,7 @@ fn main() -> ExitCode {
             {
                 return ExitCode::SUCCESS;
             }
-            eprintln!("error: {err:#}");
+            eprintln!("error: {}", vitrine_engine::error::describe(err.as_ref()));
             ExitCode::from(2)
         }
     }

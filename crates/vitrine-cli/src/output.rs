@@ -81,21 +81,27 @@ pub fn emit<R: Report>(report: &R, args: &OutputArgs) -> Result<()> {
             for line in report.preamble() {
                 writeln!(out, "{line}")?;
             }
-            write_table(&mut out, &report.columns(), &report.rows())?;
+            // Escapes only where a person reads them: never into a file.
+            let bold = args.output.is_none() && io::stdout().is_terminal();
+            write_table(&mut out, &report.columns(), &report.rows(), bold)?;
         }
     }
     out.flush()?;
     Ok(())
 }
 
-fn write_table(out: &mut dyn Write, columns: &[&str], rows: &[Vec<String>]) -> io::Result<()> {
+fn write_table(
+    out: &mut dyn Write,
+    columns: &[&str],
+    rows: &[Vec<String>],
+    bold: bool,
+) -> io::Result<()> {
     let mut widths: Vec<usize> = columns.iter().map(|c| c.chars().count()).collect();
     for row in rows {
         for (width, cell) in widths.iter_mut().zip(row) {
             *width = (*width).max(cell.chars().count());
         }
     }
-    let bold = io::stdout().is_terminal();
     let line = |cells: Vec<&str>| {
         cells
             .iter()

@@ -7,7 +7,7 @@ use std::path::{Path, PathBuf};
 use anyhow::{Context, Result};
 use serde::Deserialize;
 
-#[derive(Clone, Debug, Default, Deserialize)]
+#[derive(Clone, Debug, Default, Deserialize, PartialEq)]
 #[serde(default, deny_unknown_fields)]
 pub struct Settings {
     pub model: ModelSettings,
@@ -16,7 +16,7 @@ pub struct Settings {
     pub serve: vitrine_service::ServeSettings,
 }
 
-#[derive(Clone, Debug, Deserialize)]
+#[derive(Clone, Debug, Deserialize, PartialEq)]
 #[serde(default, deny_unknown_fields)]
 pub struct ModelSettings {
     /// Where fetched and imported models live.
@@ -37,7 +37,7 @@ impl Default for ModelSettings {
     }
 }
 
-#[derive(Clone, Debug, Deserialize)]
+#[derive(Clone, Debug, Deserialize, PartialEq)]
 #[serde(default, deny_unknown_fields)]
 pub struct IndexSettings {
     pub batch_size: usize,
@@ -61,7 +61,7 @@ impl Default for IndexSettings {
     }
 }
 
-#[derive(Clone, Debug, Deserialize)]
+#[derive(Clone, Debug, Deserialize, PartialEq)]
 #[serde(default, deny_unknown_fields)]
 pub struct QuerySettings {
     pub near_duplicate_threshold: f32,
@@ -113,5 +113,19 @@ impl Settings {
                     .with_context(|| format!("invalid configuration {}", file.display()))
             }
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The repository's `config/vitrine.toml` documents every default: read as
+    /// a configuration, it must change nothing.
+    #[test]
+    fn documented_configuration_equals_the_defaults() {
+        let documented = Path::new(env!("CARGO_MANIFEST_DIR")).join("../../config/vitrine.toml");
+        let settings = Settings::load(Some(&documented)).unwrap();
+        assert_eq!(settings, Settings::default());
     }
 }

@@ -5,6 +5,7 @@
 use std::collections::{BTreeMap, BTreeSet};
 use std::path::{Path, PathBuf};
 use std::process::Command;
+use std::sync::{Mutex, MutexGuard, OnceLock};
 
 use serde_json::Value;
 
@@ -52,34 +53,66 @@ fn path_set(values: &[Value]) -> BTreeSet<String> {
         .collect()
 }
 
+/// One test at a time uses the demo store: a command holds the store's
+/// lock while it runs, so a second one at the same moment would find it busy.
+fn one_at_a_time() -> MutexGuard<'static, ()> {
+    static TURN: Mutex<()> = Mutex::new(());
+    TURN.lock().unwrap_or_else(|poisoned| poisoned.into_inner())
+}
+
+/// The demo collection indexed once per test binary, by the binary.
+fn demo_store() -> &'static Path {
+    static STORE: OnceLock<tempfile::TempDir> = OnceLock::new();
+    let work = STORE.get_or_init(|| {
+        let work = tempfile::tempdir().unwrap();
+        let out = Command::new(BIN)
+            .arg("--store")
+            .arg(work.path().join("store"))
+            .arg("index")
+            .arg(repo().join("demo-images"))
+            .output()
+            .unwrap();
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        work
+    });
+    // Leaked on purpose: the store lives as long as the test binary.
+    Box::leak(work.path().join("store").into_boxed_path())
+}
+
+/// Runs the binary on the demo store; returns its exit code and stderr.
+fn run_failing(args: &[&str]) -> (Option<i32>, String) {
+    let out = Command::new(BIN)
+        .arg("--store")
+        .arg(demo_store())
+        .args(args)
+        .output()
+        .unwrap();
+    (
+        out.status.code(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
+}
+
 #[test]
 fn finds_every_planted_case() {
     if !model_available() {
         return;
     }
+    let _turn = one_at_a_time();
     let truth: Value = serde_json::from_str(
         &std::fs::read_to_string(repo().join("demo-images/ground-truth.json")).unwrap(),
     )
     .unwrap();
-    let work = tempfile::tempdir().unwrap();
-    let store = work.path().join("store");
-    let out = Command::new(BIN)
-        .arg("--store")
-        .arg(&store)
-        .arg("index")
-        .arg(repo().join("demo-images"))
-        .output()
-        .unwrap();
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
+    let store = demo_store();
 
-    ann_recall_on_real_embeddings(&store);
+    ann_recall_on_real_embeddings(store);
 
     // Broken files: each recorded with a reason, nothing else failed.
-    let status = run(&store, &["status", "--errors"]);
+    let status = run(store, &["status", "--errors"]);
     let failed: BTreeSet<String> = status["error_list"]
         .as_array()
         .unwrap()
@@ -97,7 +130,7 @@ fn finds_every_planted_case() {
     // Exact tiers: at threshold 1.0 only exact copies group; they must be
     // exactly the planted byte-identical and pixel-identical sets, each in
     // its tier.
-    let exact = run(&store, &["duplicates", "--threshold", "1.0", "--no-verify"]);
+    let exact = run(store, &["duplicates", "--threshold", "1.0", "--no-verify"]);
     let exact_groups: BTreeMap<BTreeSet<String>, String> = exact["groups"]
         .as_array()
         .unwrap()
@@ -137,6 +170,16 @@ fn finds_every_planted_case() {
         );
     }
     assert_eq!(exact_groups, planted_tiers);
+    // The keeper is no copy; the others of an exact group name their tier.
+    for group in exact["groups"].as_array().unwrap() {
+        for member in group["members"].as_array().unwrap() {
+            if member["keeper"] == true {
+                assert!(member["tier"].is_null(), "keeper {member}");
+            } else {
+                assert_eq!(member["tier"], group["tier"], "{member}");
+            }
+        }
+    }
 
     // The default, verified report: exactly the planted groups, no more. The
     // renders of one product line share backdrop, framing and texture, so a
@@ -171,9 +214,9 @@ fn finds_every_planted_case() {
             leak["train_counterpart"].clone(),
         ]));
     }
-    let verified = run(&store, &["duplicates"]);
+    let verified = run(store, &["duplicates"]);
     assert_eq!(member_sets(&verified), planted_groups);
-    let threshold_only = run(&store, &["duplicates", "--no-verify"]);
+    let threshold_only = run(store, &["duplicates", "--no-verify"]);
     let grouped = |report: &Value| -> usize { member_sets(report).iter().map(BTreeSet::len).sum() };
     println!(
         "demo duplicates: verified {} groups of {} images (all planted); cosine threshold alone {} groups of {} images",
@@ -189,7 +232,7 @@ fn finds_every_planted_case() {
             pair["original"].as_str().unwrap(),
             pair["edited"].as_str().unwrap(),
         );
-        let neighbours = run(&store, &["similar", "--path", edited, "-k", "1"]);
+        let neighbours = run(store, &["similar", "--path", edited, "-k", "1"]);
         assert_eq!(
             neighbours[0]["path"], original,
             "nearest neighbour of {edited}"
@@ -198,7 +241,7 @@ fn finds_every_planted_case() {
 
     // Leakage: exactly the planted copies across splits, each with its train
     // counterpart.
-    let found_leaks: BTreeSet<(String, String)> = run(&store, &["leaks"])["leaks"]
+    let found_leaks: BTreeSet<(String, String)> = run(store, &["leaks"])["leaks"]
         .as_array()
         .unwrap()
         .iter()
@@ -222,7 +265,7 @@ fn finds_every_planted_case() {
 
     // Unlabelled images: suggestions agree with the rendered class when the
     // vote does not abstain.
-    let suggestions = run(&store, &["labels", "suggest"]);
+    let suggestions = run(store, &["labels", "suggest"]);
     let suggestions = suggestions.as_array().unwrap();
     let mut agreed = 0;
     for item in truth["unlabelled"].as_array().unwrap() {
@@ -270,4 +313,107 @@ fn ann_recall_on_real_embeddings(store_dir: &Path) {
     let recall = hits as f64 / (k * ids.len()) as f64;
     println!("recall@10 on {} real embeddings: {recall:.4}", ids.len());
     assert!(recall >= 0.98, "recall@10 {recall}");
+}
+
+/// A typo must not look like an empty answer: an unknown split or label, an
+/// impossible count or filters that nothing passes are errors (exit 2) that
+/// name what is known; a count that had to be lowered says so.
+#[test]
+fn typos_are_errors_that_list_what_is_known() {
+    if !model_available() {
+        return;
+    }
+    let _turn = one_at_a_time();
+    let truth: Value = serde_json::from_str(
+        &std::fs::read_to_string(repo().join("demo-images/ground-truth.json")).unwrap(),
+    )
+    .unwrap();
+    let some_image = truth["near_duplicates"][0]["original"].as_str().unwrap();
+    let cases: [(&[&str], &[&str]); 8] = [
+        (
+            &["leaks", "--against", "nosuch"],
+            &["`nosuch`", "test, train, val"],
+        ),
+        (
+            &["leaks", "--split", "tset"],
+            &["`tset`", "test, train, val"],
+        ),
+        (
+            &["similar", "--path", some_image, "--label", "nosuch"],
+            &["`nosuch`", "basket, bowl, mug, planter, scarf, vase"],
+        ),
+        (
+            &["similar", "--path", some_image, "--split", "nosuch"],
+            &["test, train, val"],
+        ),
+        (
+            &["similar", "--path", some_image, "-k", "0"],
+            &["at least 1"],
+        ),
+        (
+            &[
+                "similar", "--path", some_image, "--split", "val", "--prefix", "train/",
+            ],
+            &["no image matches split `val` and path prefix `train/`"],
+        ),
+        (&["labels", "suggest", "-k", "0"], &["at least 1"]),
+        (&["clusters", "-k", "0"], &["at least 1"]),
+    ];
+    for (args, expected) in cases {
+        let (code, stderr) = run_failing(args);
+        assert_eq!(code, Some(2), "{args:?}: {stderr}");
+        for text in expected {
+            assert!(stderr.contains(text), "{args:?}: {stderr}");
+        }
+    }
+
+    let images = run(demo_store(), &["status"])["images"].as_u64().unwrap();
+    let asked = (images + 50).to_string();
+    let clusters = run(demo_store(), &["clusters", "-k", &asked]);
+    assert_eq!(clusters["n_clusters"].as_u64(), Some(images));
+    let note = clusters["note"].as_str().unwrap_or_default();
+    assert!(note.contains(&asked), "{clusters}");
+
+    // A missing query file: the reason once, not repeated by the cause chain.
+    let (code, stderr) = run_failing(&["similar", "--file", "no-such-file.jpg"]);
+    assert_eq!(code, Some(2));
+    assert_eq!(
+        stderr.matches("No such file or directory").count(),
+        1,
+        "{stderr}"
+    );
+}
+
+/// A table written to a file holds no terminal escapes, even when standard
+/// output is a terminal (`script` from util-linux gives the run one).
+#[test]
+fn tables_written_to_files_have_no_terminal_escapes() {
+    if !model_available() {
+        return;
+    }
+    let _turn = one_at_a_time();
+    let work = tempfile::tempdir().unwrap();
+    let table = work.path().join("status.txt");
+    let under_terminal = |extra: &str| {
+        let command = format!(
+            "'{BIN}' --store '{}' status {extra}",
+            demo_store().display()
+        );
+        let out = Command::new("script")
+            .args(["--quiet", "--return", "--command", &command, "/dev/null"])
+            .output()
+            .unwrap();
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8_lossy(&out.stdout).into_owned()
+    };
+    // On the terminal itself the header is bold: the run has a terminal.
+    assert!(under_terminal("").contains("\u{1b}[1m"));
+    under_terminal(&format!("--output '{}'", table.display()));
+    let written = std::fs::read_to_string(&table).unwrap();
+    assert!(written.contains("images"), "{written}");
+    assert!(!written.contains('\u{1b}'), "{written:?}");
 }

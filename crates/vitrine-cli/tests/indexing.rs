@@ -374,3 +374,173 @@ fn killed_runs_resume_to_the_same_store_as_a_clean_run() {
     }
     assert_eq!(fx.status()["errors"], 1);
 }
+
+/// Runs `vitrine ARGS`, expects it to be refused with exit code 2, and
+/// returns what it said on standard error.
+fn refused(fx: &Fixture, args: &[&str]) -> String {
+    let out = fx.run(args);
+    assert_eq!(
+        out.status.code(),
+        Some(2),
+        "{args:?} was not refused: {}",
+        String::from_utf8_lossy(&out.stdout)
+    );
+    String::from_utf8(out.stderr).unwrap()
+}
+
+fn path_str(path: &Path) -> &str {
+    path.to_str().unwrap()
+}
+
+#[test]
+fn a_file_root_is_refused_naming_the_folder_to_give() {
+    let fx = Fixture::new();
+    let photo = fx.images().join("train/cat/photo.png");
+    write_image(&photo, 1);
+    let said = refused(&fx, &["index", path_str(&photo)]);
+    assert!(
+        said.contains(&format!(
+            "{} is a file; give the folder that holds it",
+            photo.display()
+        )),
+        "{said}"
+    );
+    assert!(!fx.store().exists(), "a refused run created a store");
+}
+
+#[test]
+fn refused_roots_leave_no_new_store_and_record_nothing() {
+    let fx = Fixture::new();
+    write_image(&fx.images().join("train/cat/a.png"), 1);
+    let missing = fx.dir.path().join("nosuchdir");
+    let said = refused(&fx, &["index", path_str(&missing)]);
+    assert!(
+        said.contains(&format!("root {} does not exist", missing.display())),
+        "{said}"
+    );
+    assert!(!fx.store().exists(), "a refused run created a store");
+
+    // A good root beside a bad one: the run is refused before either is indexed.
+    refused(&fx, &["index", path_str(&fx.images()), path_str(&missing)]);
+    assert!(!fx.store().exists(), "a refused run created a store");
+
+    // Into an existing store, a refused run records no root and no image.
+    fx.index();
+    let other = fx.dir.path().join("other");
+    write_image(&other.join("b.png"), 2);
+    refused(&fx, &["index", path_str(&other), path_str(&missing)]);
+    let status = fx.status();
+    assert_eq!(status["images"], 1);
+    assert_eq!(
+        status["roots"],
+        serde_json::json!([fx.images().canonicalize().unwrap().to_str().unwrap()])
+    );
+}
+
+#[test]
+fn status_counts_images_per_root_and_marks_empty_roots() {
+    let fx = Fixture::new();
+    write_image(&fx.images().join("train/cat/a.png"), 1);
+    write_image(&fx.images().join("train/dog/b.png"), 2);
+    let empty = fx.dir.path().join("empty");
+    std::fs::create_dir(&empty).unwrap();
+    let notes = fx.dir.path().join("notes");
+    std::fs::create_dir(&notes).unwrap();
+    std::fs::write(notes.join("README"), "no pictures here\n").unwrap();
+    let out = fx.run(&[
+        "index",
+        path_str(&fx.images()),
+        path_str(&empty),
+        path_str(&notes),
+    ]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+
+    let [images, empty, notes] =
+        [fx.images(), empty, notes].map(|p| p.canonicalize().unwrap().display().to_string());
+    let status = fx.status();
+    assert_eq!(
+        status["images_per_root"],
+        serde_json::json!({ &images: 2, &empty: 0, &notes: 0 })
+    );
+    // `roots` keeps its shape: the paths, in the order they were added.
+    assert_eq!(
+        status["roots"],
+        serde_json::json!([&images, &empty, &notes])
+    );
+
+    let out = fx.run(&["status"]);
+    let table = String::from_utf8(out.stdout).unwrap();
+    for line in [
+        format!("root: {images} (2 images)"),
+        format!("root: {empty} (no images)"),
+        format!("root: {notes} (no images)"),
+    ] {
+        assert!(table.lines().any(|l| l == line), "no `{line}` in\n{table}");
+    }
+}
+
+#[test]
+fn index_counts_skipped_links_and_special_files_and_names_loops() {
+    use std::os::unix::fs::symlink;
+
+    let fx = Fixture::new();
+    let cats = fx.images().join("train/cat");
+    write_image(&cats.join("a.png"), 1);
+    symlink("a.png", cats.join("alias.png")).unwrap();
+    symlink(".", fx.images().join("loop")).unwrap();
+    symlink("..", cats.join("up")).unwrap();
+    let made = Command::new("mkfifo")
+        .arg(cats.join("pipe"))
+        .status()
+        .unwrap();
+    assert!(made.success());
+
+    let first = fx.index();
+    assert!(
+        first.contains("3 symbolic links and 1 special file skipped"),
+        "{first}"
+    );
+    assert!(first.contains("--follow-symlinks follows them"), "{first}");
+    assert_eq!(count(&first, "new"), 1, "{first}");
+    assert_eq!(count(&first, "failed"), 0, "{first}");
+
+    let out = fx.run(&["index", "--follow-symlinks", path_str(&fx.images())]);
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let followed = String::from_utf8(out.stdout).unwrap();
+    assert!(followed.contains("1 special file skipped"), "{followed}");
+    assert!(!followed.contains("symbolic link"), "{followed}");
+    assert_eq!(count(&followed, "new"), 1, "{followed}"); // alias.png
+    assert_eq!(count(&followed, "failed"), 2, "{followed}"); // the two loops
+    let reasons: BTreeMap<String, String> = fx.status()["error_list"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|e| {
+            (
+                e["path"].as_str().unwrap().to_owned(),
+                e["reason"].as_str().unwrap().to_owned(),
+            )
+        })
+        .collect();
+    assert_eq!(
+        reasons,
+        BTreeMap::from([
+            (
+                "loop".to_owned(),
+                "symbolic link loop back to the root folder".to_owned()
+            ),
+            (
+                "train/cat/up".to_owned(),
+                "symbolic link loop back to train".to_owned()
+            ),
+        ])
+    );
+}

@@ -21,7 +21,8 @@ use rand::{Rng, SeedableRng};
 use rand_chacha::ChaCha8Rng;
 use vitrine_engine::calibrate::{calibrate, CalibrationOptions, Edit, MILD_EDITS, STRONG_EDITS};
 use vitrine_engine::catalog::{dot, Catalog};
-use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions, NoProgress};
+use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions};
+use vitrine_engine::progress::NoProgress;
 use vitrine_engine::verify::{compare, ImageEvidence, PairCheck, VerifyOptions};
 use vitrine_imaging::{decode_path, preprocess, DecodeOptions, PreparedImage};
 use vitrine_model::config::Pooling;
@@ -554,6 +555,7 @@ fn main() -> Result<()> {
             sample: 1000,
             ..CalibrationOptions::default()
         },
+        &NoProgress,
     )?;
     println!("{}", serde_json::to_string_pretty(&report)?);
     Ok(())

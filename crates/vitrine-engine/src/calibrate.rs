@@ -27,6 +27,7 @@ use vitrine_store::Store;
 use crate::catalog::{dot, Catalog};
 use crate::error::EngineError;
 use crate::ingest::fingerprint_of;
+use crate::progress::Progress;
 
 /// How far an edit moves an image from its original.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Serialize)]
@@ -474,6 +475,7 @@ pub fn calibrate(
     catalog: &Catalog,
     encoder: &Encoder,
     options: &CalibrationOptions,
+    progress: &dyn Progress,
 ) -> Result<CalibrationReport, EngineError> {
     let loaded = fingerprint_of(encoder);
     if store.fingerprint() != &loaded {
@@ -495,7 +497,9 @@ pub fn calibrate(
     let mut sample = SimilaritySample::default();
     let mut unreadable = 0;
     let preprocess_spec = &encoder.spec().preprocess;
+    progress.begin("images edited and embedded", rows.len() as u64);
     for &row in &rows {
+        progress.advance(1);
         let Some(path) = catalog.absolute_path(catalog.ids[row]) else {
             unreadable += 1;
             continue;
@@ -525,6 +529,7 @@ pub fn calibrate(
             sample.negatives.push(similarity);
         }
     }
+    progress.finish();
     let mut report = sample.report(options);
     report.originals = rows.len() - unreadable;
     report.unreadable = unreadable;

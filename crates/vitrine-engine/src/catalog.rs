@@ -1,7 +1,7 @@
 //! An in-memory view of a collection's records and embeddings, taken once per
 //! query (or kept by the service and refreshed after writes).
 
-use std::collections::HashMap;
+use std::collections::{BTreeSet, HashMap};
 use std::path::PathBuf;
 
 use serde::Serialize;
@@ -98,10 +98,51 @@ impl Catalog {
         }
     }
 
+    /// Every split an image is in, sorted.
+    pub fn splits(&self) -> Vec<String> {
+        distinct(self.records.iter().filter_map(|r| r.split.as_deref()))
+    }
+
+    /// Every label an image has, sorted.
+    pub fn labels(&self) -> Vec<String> {
+        distinct(self.records.iter().filter_map(|r| r.label.as_deref()))
+    }
+
+    /// `Ok` when some image is in `split`, else an error naming the known splits.
+    pub fn check_split(&self, split: &str) -> Result<(), EngineError> {
+        let known = self.splits();
+        if known.iter().any(|s| s == split) {
+            Ok(())
+        } else {
+            Err(EngineError::UnknownSplit {
+                split: split.to_owned(),
+                known,
+            })
+        }
+    }
+
+    /// `Ok` when some image has `label`, else an error naming the known labels.
+    pub fn check_label(&self, label: &str) -> Result<(), EngineError> {
+        let known = self.labels();
+        if known.iter().any(|l| l == label) {
+            Ok(())
+        } else {
+            Err(EngineError::UnknownLabel {
+                label: label.to_owned(),
+                known,
+            })
+        }
+    }
+
     /// Cosine similarity of two rows (embeddings are unit vectors).
     pub fn similarity(&self, a: usize, b: usize) -> f32 {
         dot(self.embedding_at(a), self.embedding_at(b))
     }
+}
+
+fn distinct<'a>(values: impl Iterator<Item = &'a str>) -> Vec<String> {
+    let set: BTreeSet<&str> = values.collect();
+    set.into_iter().map(str::to_owned).collect()
 }
 
 pub fn dot(a: &[f32], b: &[f32]) -> f32 {

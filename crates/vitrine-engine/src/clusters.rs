@@ -58,6 +58,9 @@ pub struct ClusterSummary {
 #[derive(Clone, Debug, Serialize)]
 pub struct ClusterReport {
     pub n_clusters: usize,
+    /// Set when the number of clusters asked for could not be given.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub note: Option<String>,
     pub seed: u64,
     /// Largest first.
     pub clusters: Vec<ClusterSummary>,
@@ -81,14 +84,26 @@ pub fn cluster_collection(
     if n_items == 0 {
         return Ok(ClusterReport {
             n_clusters: 0,
+            note: None,
             seed: options.seed,
             clusters: Vec::new(),
         });
+    }
+    if options.n_clusters == Some(0) {
+        return Err(EngineError::InvalidArgument(
+            "the number of clusters must be at least 1".into(),
+        ));
     }
     let n_clusters = options
         .n_clusters
         .unwrap_or_else(|| automatic_n_clusters(n_items))
         .min(n_items);
+    let note = options
+        .n_clusters
+        .filter(|&asked| asked > n_items)
+        .map(|asked| {
+            format!("{asked} clusters were asked for, but the collection has {n_items} images: {n_clusters} clusters")
+        });
     let kmeans_options = KMeansOptions {
         seed: options.seed,
         ..KMeansOptions::new(n_clusters)
@@ -145,6 +160,7 @@ pub fn cluster_collection(
     clusters.sort_by(|a, b| b.size.cmp(&a.size).then(a.index.cmp(&b.index)));
     Ok(ClusterReport {
         n_clusters,
+        note,
         seed: options.seed,
         clusters,
     })

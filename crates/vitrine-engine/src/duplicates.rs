@@ -13,7 +13,7 @@
 //! below it. Pairs whose files cannot be read are judged on the threshold
 //! alone, and the result says so.
 
-use std::collections::{BTreeMap, HashMap};
+use std::collections::{BTreeMap, HashMap, HashSet};
 
 use rayon::prelude::*;
 use serde::Serialize;
@@ -128,8 +128,13 @@ pub struct DuplicateReport {
 pub struct GroupMember {
     #[serde(flatten)]
     pub image: ImageRef,
-    /// How this member relates to the group's keeper (the keeper itself: bytes).
-    pub tier: DuplicateTier,
+    /// The strongest tier linking this member to the keeper or to a member
+    /// listed before it (`copy_of`); `None` for the keeper, which is no copy.
+    pub tier: Option<DuplicateTier>,
+    /// The member that `tier` relates this one to: four byte-identical files
+    /// under a keeper of another format are bytes copies of the first of them.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub copy_of: Option<ImageId>,
     /// Cosine similarity to the keeper.
     pub similarity: f32,
     pub keeper: bool,
@@ -144,7 +149,7 @@ pub struct GroupMember {
 /// A group of images that are copies of one picture.
 #[derive(Clone, Debug, Serialize)]
 pub struct DuplicateGroup {
-    /// The weakest tier linking any member to the keeper.
+    /// The weakest of the members' tiers: the whole group is at least this close.
     pub tier: DuplicateTier,
     /// The suggested keeper first, then the others by decreasing similarity.
     pub members: Vec<GroupMember>,
@@ -267,6 +272,15 @@ fn judge(
     );
     verifier.recall_from(store, &pending)?;
     let pending = unjudged(pending);
+    let files_to_read: HashSet<[u8; 32]> = pending
+        .iter()
+        .flat_map(|(a, b)| [a.content_hash, b.content_hash])
+        .collect();
+    let progress = verifier.progress();
+    progress.begin(
+        "images read and pairs compared (near-pair check)",
+        (files_to_read.len() + pending.len()) as u64,
+    );
     let mut rest = pending.as_slice();
     while !rest.is_empty() {
         let mut files = BTreeMap::new();
@@ -286,9 +300,11 @@ fn judge(
         // Failures (an unreadable file) are not remembered: judged on the threshold below.
         round.par_iter().for_each(|(a, b)| {
             let _ = verifier.check(a, b);
+            progress.advance(1);
         });
         rest = later;
     }
+    progress.finish();
     verifier.keep_in(store, &pending)?;
     // Every pair is judged now, except those with a file that could not be read.
     let checks: Vec<Option<PairCheck>> = candidates
@@ -430,14 +446,27 @@ fn build_group(
 ) -> DuplicateGroup {
     rows.sort_by(|&a, &b| keeper_order(catalog, a, b));
     let keeper = rows[0];
-    let mut members: Vec<GroupMember> = rows
+    // The keeper first, then by decreasing similarity to it: identical
+    // copies have equal embeddings, so they sit next to each other.
+    rows[1..].sort_by(|&a, &b| {
+        catalog
+            .similarity(keeper, b)
+            .total_cmp(&catalog.similarity(keeper, a))
+    });
+    let members: Vec<GroupMember> = rows
         .iter()
-        .map(|&row| {
+        .enumerate()
+        .map(|(position, &row)| {
             let record = &catalog.records[row];
-            let tier = tier_between(catalog, keeper, row);
+            // Ties go to the earliest member, so the keeper wins them.
+            let link = rows[..position]
+                .iter()
+                .map(|&earlier| (tier_between(catalog, earlier, row), earlier))
+                .min_by_key(|&(tier, _)| tier);
             GroupMember {
                 image: catalog.image_ref(row),
-                tier,
+                tier: link.map(|(tier, _)| tier),
+                copy_of: link.map(|(_, earlier)| catalog.ids[earlier]),
                 similarity: catalog.similarity(keeper, row),
                 keeper: row == keeper,
                 verification: verification_of.get(&row).copied(),
@@ -447,10 +476,9 @@ fn build_group(
             }
         })
         .collect();
-    members[1..].sort_by(|a, b| b.similarity.total_cmp(&a.similarity));
     let tier = members
         .iter()
-        .map(|m| m.tier)
+        .filter_map(|m| m.tier)
         .max()
         .unwrap_or(DuplicateTier::Bytes);
     DuplicateGroup { tier, members }
@@ -529,6 +557,15 @@ pub fn find_leaks_verified(
     verifier: Option<&PairVerifier>,
 ) -> Result<LeakReport, EngineError> {
     let reference = options.reference_split.as_str();
+    // A collection without splits has nothing to leak; in one with splits, a
+    // split nobody is in is a typo, not "no leaks".
+    if !catalog.splits().is_empty() {
+        for split in
+            std::iter::once(reference).chain(options.evaluated_splits.iter().map(String::as_str))
+        {
+            catalog.check_split(split)?;
+        }
+    }
     let split_of = |row: usize| catalog.records[row].split.as_deref();
     let mut evaluated: Vec<String> = if options.evaluated_splits.is_empty() {
         let mut splits: Vec<String> = catalog

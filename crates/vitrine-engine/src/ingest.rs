@@ -13,8 +13,9 @@ use vitrine_model::encoder::Encoder;
 use vitrine_store::{ChangeSet, FileError, ImageId, ImageRecord, ModelFingerprint, Store, Upsert};
 
 use crate::error::EngineError;
+use crate::progress::Progress;
 use crate::splits::SplitRule;
-use crate::walk::{walk_root, FoundFile, WalkOptions};
+use crate::walk::{resolve_root, walk_root, FoundFile, WalkOptions};
 
 /// The fingerprint that ties a store to the model that filled it.
 pub fn fingerprint_of(encoder: &Encoder) -> ModelFingerprint {
@@ -69,6 +70,10 @@ pub struct IndexReport {
     pub reused_embeddings: usize,
     /// Files that are not images and do not claim to be (no image extension).
     pub skipped_non_images: usize,
+    /// Symbolic links passed over because links are not followed.
+    pub skipped_symlinks: usize,
+    /// FIFOs, sockets and devices, which are never opened.
+    pub skipped_special_files: usize,
     /// Wall time spent reading, hashing, decoding and preprocessing.
     pub decode_seconds: f64,
     /// Wall time spent in forward passes.
@@ -87,20 +92,25 @@ impl std::fmt::Display for IndexReport {
     }
 }
 
-/// Receives progress; the command line draws a bar or logs lines.
-pub trait IndexProgress: Sync {
-    fn begin(&self, files_to_process: u64);
-    fn advance(&self, files_done: u64);
-    fn finish(&self);
+impl IndexReport {
+    /// What the walk passed over, e.g. "3 symbolic links and 1 special file
+    /// skipped"; `None` when nothing was.
+    pub fn skipped_entries(&self) -> Option<String> {
+        let parts: Vec<String> = [
+            (self.skipped_symlinks, "symbolic link", "symbolic links"),
+            (self.skipped_special_files, "special file", "special files"),
+        ]
+        .into_iter()
+        .filter(|(n, _, _)| *n > 0)
+        .map(|(n, singular, plural)| counted(n, singular, plural))
+        .collect();
+        (!parts.is_empty()).then(|| format!("{} skipped", parts.join(" and ")))
+    }
 }
 
-/// A progress sink that reports nothing.
-pub struct NoProgress;
-
-impl IndexProgress for NoProgress {
-    fn begin(&self, _: u64) {}
-    fn advance(&self, _: u64) {}
-    fn finish(&self) {}
+/// "1 image", "3 images".
+pub(crate) fn counted(n: usize, singular: &str, plural: &str) -> String {
+    format!("{n} {}", if n == 1 { singular } else { plural })
 }
 
 /// A file to (re-)embed.
@@ -148,13 +158,26 @@ fn now_unix_s() -> i64 {
         .map_or(0, |d| d.as_secs() as i64)
 }
 
-/// Indexes every root into `store` with `encoder`.
+/// Checks an index run's roots and ignore patterns without writing anything,
+/// and returns the roots' canonical paths. `index_roots` starts with it; a
+/// caller that creates the store for the run calls it first, so that a refused
+/// run leaves no new store behind.
+pub fn resolve_roots(
+    roots: &[PathBuf],
+    options: &IndexOptions,
+) -> Result<Vec<PathBuf>, EngineError> {
+    options.walk.check()?;
+    roots.iter().map(|root| resolve_root(root)).collect()
+}
+
+/// Indexes every root into `store` with `encoder`. Every root is checked
+/// before the first is indexed: a run refused for one root records nothing.
 pub fn index_roots(
     store: &mut Store,
     encoder: &Encoder,
     roots: &[PathBuf],
     options: &IndexOptions,
-    progress: &dyn IndexProgress,
+    progress: &dyn Progress,
 ) -> Result<IndexReport, EngineError> {
     let expected = fingerprint_of(encoder);
     if store.fingerprint() != &expected {
@@ -163,6 +186,32 @@ pub fn index_roots(
             loaded: expected.to_string(),
         });
     }
+    let roots = resolve_roots(roots, options)?;
+    index_resolved_roots(store, encoder, &roots, options, progress)
+        .map_err(|error| explain_full_device(error, store))
+}
+
+/// A full device stops a run at a commit; what the store kept is what the
+/// next run starts from, so the error says how much that is.
+fn explain_full_device(error: EngineError, store: &Store) -> EngineError {
+    match error {
+        EngineError::Store(store_error) if store_error.is_storage_full() => {
+            EngineError::StoreDeviceFull {
+                store: store.dir().to_path_buf(),
+                committed_images: store.len(),
+            }
+        }
+        other => other,
+    }
+}
+
+fn index_resolved_roots(
+    store: &mut Store,
+    encoder: &Encoder,
+    roots: &[PathBuf],
+    options: &IndexOptions,
+    progress: &dyn Progress,
+) -> Result<IndexReport, EngineError> {
     let mut report = IndexReport::default();
     let started = Instant::now();
     for root in roots {
@@ -179,22 +228,19 @@ pub fn index_roots(
     Ok(report)
 }
 
+/// Indexes one root, given as its canonical path.
 fn index_one_root(
     store: &mut Store,
     encoder: &Encoder,
     root: &Path,
     options: &IndexOptions,
-    progress: &dyn IndexProgress,
+    progress: &dyn Progress,
     report: &mut IndexReport,
 ) -> Result<(), EngineError> {
-    let root = root
-        .canonicalize()
-        .map_err(|source| EngineError::UnreadableRoot {
-            root: root.to_path_buf(),
-            message: source.to_string(),
-        })?;
-    let root_id = store.add_root(&root)?;
-    let walked = walk_root(&root, &options.walk)?;
+    let root_id = store.add_root(root)?;
+    let walked = walk_root(root, &options.walk)?;
+    report.skipped_symlinks += walked.skipped_symlinks;
+    report.skipped_special_files += walked.skipped_special_files;
 
     let mut existing: HashMap<String, (ImageId, ImageRecord)> = HashMap::new();
     for entry in store.records() {
@@ -260,7 +306,7 @@ fn index_one_root(
         })?;
     }
 
-    progress.begin(pending.len() as u64);
+    progress.begin("images", pending.len() as u64);
     for chunk in pending.chunks(options.commit_every.max(1)) {
         let changes = embed_chunk(store, encoder, root_id, chunk, options, report)?;
         let committing = Instant::now();
@@ -394,6 +440,19 @@ fn embed_chunk(
     Ok(changes)
 }
 
+/// An error's message followed by its causes': a store error keeps its cause
+/// as a source rather than in its message.
+fn with_causes(error: &dyn std::error::Error) -> String {
+    let mut text = error.to_string();
+    let mut cause = error.source();
+    while let Some(inner) = cause {
+        text.push_str(": ");
+        text.push_str(&inner.to_string());
+        cause = inner.source();
+    }
+    text
+}
+
 /// Reads, hashes, decodes and preprocesses one file. `Err(None)` means the
 /// file is not an image and does not claim to be one.
 fn decode_one(
@@ -441,7 +500,7 @@ fn decode_one(
     };
     let known_embedding = store
         .embedding_by_content_hash(&content_hash)
-        .map_err(|e| Some(fail(e.to_string())))?;
+        .map_err(|e| Some(fail(with_causes(&e))))?;
     let prepared = match known_embedding {
         Some(_) => None,
         None => Some(preprocess(&decoded.rgb, spec).map_err(|e| Some(fail(e.to_string())))?),
@@ -452,4 +511,94 @@ fn decode_one(
         prepared,
         known_embedding,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use vitrine_store::StoreError;
+
+    use super::*;
+
+    /// A real store holding `images` committed images under one root.
+    fn store_with_images(dir: &Path, images: usize) -> Store {
+        let fingerprint = ModelFingerprint {
+            model_id: "test-model".into(),
+            weights_sha256: "00".repeat(32),
+            preprocess: "{}".into(),
+            pooling: "cls".into(),
+            dim: 4,
+        };
+        let mut store = Store::create_or_open(dir, &fingerprint).unwrap();
+        let root = store.add_root(&dir.join("photos")).unwrap();
+        let upserts = (0..images)
+            .map(|i| Upsert {
+                replaces: None,
+                record: ImageRecord {
+                    root,
+                    rel_path: format!("img{i}.png"),
+                    byte_size: 100,
+                    modified_unix_ns: 0,
+                    content_hash: [i as u8; 32],
+                    pixel_hash: [i as u8; 32],
+                    width: 8,
+                    height: 8,
+                    split: None,
+                    label: None,
+                },
+                embedding: vec![1.0, i as f32, 0.5, 0.25],
+            })
+            .collect();
+        store
+            .commit(ChangeSet {
+                upserts,
+                ..ChangeSet::default()
+            })
+            .unwrap();
+        store
+    }
+
+    #[test]
+    fn a_full_device_says_what_the_store_kept_and_how_to_resume() {
+        let dir = tempfile::tempdir().unwrap();
+        let store_dir = dir.path().join("store");
+        let store = store_with_images(&store_dir, 3);
+        // ENOSPC from a write of the graph dump, as the kernel reports it.
+        let full = EngineError::Store(StoreError::Io {
+            path: store_dir.join("graph/index.hnsw.data"),
+            source: std::io::Error::from_raw_os_error(28),
+        });
+        let message = explain_full_device(full, &store).to_string();
+        let shown = store_dir.display().to_string();
+        assert_eq!(
+            message,
+            format!(
+                "the device holding the store {shown} is full, so indexing stopped; the store \
+                 keeps its last commit (3 images); free space on the device holding {shown} and \
+                 run the same command again: it resumes"
+            )
+        );
+
+        let denied = EngineError::Store(StoreError::Io {
+            path: store_dir.join("graph"),
+            source: std::io::Error::from(std::io::ErrorKind::PermissionDenied),
+        });
+        assert!(matches!(
+            explain_full_device(denied, &store),
+            EngineError::Store(StoreError::Io { .. })
+        ));
+    }
+
+    #[test]
+    fn skipped_entries_are_counted_in_words() {
+        let report = IndexReport {
+            skipped_symlinks: 3,
+            skipped_special_files: 1,
+            ..IndexReport::default()
+        };
+        assert_eq!(
+            report.skipped_entries().as_deref(),
+            Some("3 symbolic links and 1 special file skipped")
+        );
+        assert_eq!(IndexReport::default().skipped_entries(), None);
+    }
 }

@@ -8,6 +8,7 @@ use vitrine_store::{ImageId, Store};
 use crate::analytics::label_vote::{label_disagreement, vote_label, VotingNeighbour};
 use crate::catalog::{Catalog, ImageRef};
 use crate::error::EngineError;
+use crate::neighbours::check_k;
 
 #[derive(Clone, Debug)]
 pub struct LabelOptions {
@@ -78,6 +79,25 @@ fn invalid(e: crate::analytics::AnalyticsError) -> EngineError {
     EngineError::InvalidArgument(e.to_string())
 }
 
+impl LabelOptions {
+    /// `Ok` for options that can give an answer: at least one voter, shares
+    /// between 0 and 1.
+    fn check(&self) -> Result<(), EngineError> {
+        check_k(self.k)?;
+        for (name, share) in [
+            ("min_confidence", self.min_confidence),
+            ("min_disagreement", self.min_disagreement),
+        ] {
+            if !(0.0..=1.0).contains(&share) {
+                return Err(EngineError::InvalidArgument(format!(
+                    "{name} is a share of the vote between 0 and 1, not {share}"
+                )));
+            }
+        }
+        Ok(())
+    }
+}
+
 /// The suggestion for one image (labelled or not).
 pub fn suggest_label(
     store: &Store,
@@ -85,6 +105,7 @@ pub fn suggest_label(
     id: ImageId,
     options: &LabelOptions,
 ) -> Result<LabelSuggestion, EngineError> {
+    options.check()?;
     let row = catalog.row(id).ok_or(EngineError::UnknownImage(id))?;
     let neighbours = labelled_neighbours(store, catalog, row, options.k)?;
     let vote = vote_label(&neighbours, options.min_confidence).map_err(invalid)?;
@@ -115,6 +136,7 @@ pub fn find_label_suspects(
     catalog: &Catalog,
     options: &LabelOptions,
 ) -> Result<Vec<LabelSuspect>, EngineError> {
+    options.check()?;
     let mut suspects = Vec::new();
     for row in 0..catalog.len() {
         let Some(own_label) = catalog.records[row].label.as_ref() else {

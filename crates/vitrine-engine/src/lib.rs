@@ -12,6 +12,7 @@ pub mod error;
 pub mod ingest;
 pub mod labels;
 pub mod neighbours;
+pub mod progress;
 pub mod splits;
 pub mod verify;
 pub mod walk;

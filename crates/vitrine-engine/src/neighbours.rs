@@ -1,7 +1,7 @@
 //! Nearest neighbours of an indexed image, an outside file or a vector.
 
 use serde::Serialize;
-use vitrine_store::{ImageId, Store};
+use vitrine_store::{ImageId, ImageRecord, Store};
 
 use crate::catalog::{Catalog, ImageRef};
 use crate::error::EngineError;
@@ -20,10 +20,8 @@ impl NeighbourFilter {
         self.split.is_none() && self.label.is_none() && self.path_prefix.is_none()
     }
 
-    fn accepts(&self, catalog: &Catalog, id: ImageId) -> bool {
-        let Some(record) = catalog.record(id) else {
-            return false;
-        };
+    /// Whether an image with this record passes the filter.
+    pub fn accepts_record(&self, record: &ImageRecord) -> bool {
         self.split
             .as_ref()
             .is_none_or(|s| record.split.as_ref() == Some(s))
@@ -36,6 +34,52 @@ impl NeighbourFilter {
                 .as_ref()
                 .is_none_or(|p| record.rel_path.starts_with(p.as_str()))
     }
+
+    /// `Ok` when the split and label it names exist in the collection, else
+    /// an error that lists the known ones (a typo must not look like "no
+    /// results").
+    pub fn check_known(&self, catalog: &Catalog) -> Result<(), EngineError> {
+        if let Some(split) = &self.split {
+            catalog.check_split(split)?;
+        }
+        if let Some(label) = &self.label {
+            catalog.check_label(label)?;
+        }
+        Ok(())
+    }
+
+    /// Why a filtered query found nothing, if the filter is the reason: an
+    /// unknown split or label, or no image that passes every part of it.
+    pub fn check_matches_some(&self, catalog: &Catalog) -> Result<(), EngineError> {
+        if self.is_empty() {
+            return Ok(());
+        }
+        self.check_known(catalog)?;
+        if catalog.records.iter().any(|r| self.accepts_record(r)) {
+            return Ok(());
+        }
+        let mut parts = Vec::new();
+        if let Some(split) = &self.split {
+            parts.push(format!("split `{split}`"));
+        }
+        if let Some(label) = &self.label {
+            parts.push(format!("label `{label}`"));
+        }
+        if let Some(prefix) = &self.path_prefix {
+            parts.push(format!("path prefix `{prefix}`"));
+        }
+        Err(EngineError::NoImageMatches(parts.join(" and ")))
+    }
+}
+
+/// `Ok` for a usable number of neighbours.
+pub fn check_k(k: usize) -> Result<(), EngineError> {
+    if k == 0 {
+        return Err(EngineError::InvalidArgument(
+            "k (how many neighbours) must be at least 1".into(),
+        ));
+    }
+    Ok(())
 }
 
 /// One neighbour with its cosine similarity to the query.
@@ -63,8 +107,15 @@ pub fn nearest_to_vector(
             catalog.dim
         )));
     }
-    let accepts = |id: ImageId| Some(id) != exclude && filter.accepts(catalog, id);
+    check_k(k)?;
+    let accepts = |id: ImageId| {
+        Some(id) != exclude && catalog.record(id).is_some_and(|r| filter.accepts_record(r))
+    };
     let hits = store.search(query, k, Some(&accepts))?;
+    // Checked only when nothing was found, so answered queries pay nothing.
+    if hits.is_empty() {
+        filter.check_matches_some(catalog)?;
+    }
     Ok(hits
         .into_iter()
         .filter_map(|(id, similarity)| {

@@ -54,6 +54,7 @@ use vitrine_model::encoder::{Encoder, PatchTokens};
 use vitrine_store::Store;
 
 use crate::error::EngineError;
+use crate::progress::{NoProgress, Progress};
 
 /// What one image contributes to a pair check.
 pub struct ImageEvidence {
@@ -747,6 +748,8 @@ pub struct PairVerifier {
     evidence: Mutex<HashMap<[u8; 32], Arc<ImageEvidence>>>,
     verdicts: Mutex<Verdicts>,
     stopped: AtomicBool,
+    /// Told of every image read and pair compared.
+    progress: Box<dyn Progress + Send>,
 }
 
 impl PairVerifier {
@@ -757,7 +760,20 @@ impl PairVerifier {
             evidence: Mutex::new(HashMap::new()),
             verdicts: Mutex::new(HashMap::new()),
             stopped: AtomicBool::new(false),
+            progress: Box::new(NoProgress),
         }
+    }
+
+    /// The same verifier, reporting its work to `progress`.
+    pub fn with_progress(self, progress: impl Progress + Send + 'static) -> Self {
+        Self {
+            progress: Box::new(progress),
+            ..self
+        }
+    }
+
+    pub fn progress(&self) -> &dyn Progress {
+        self.progress.as_ref()
     }
 
     /// Makes the computation of evidence, now and later, fail with
@@ -816,6 +832,7 @@ impl PairVerifier {
                     cache.insert(file.content_hash, Arc::new(found));
                 }
             }
+            self.progress.advance(chunk.len() as u64);
         }
         Ok(())
     }

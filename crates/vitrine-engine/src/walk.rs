@@ -2,8 +2,11 @@
 //!
 //! Files are recognised as images by their content later, at decode time; the
 //! walk only filters what is obviously not ours to look at (hidden entries and
-//! configured ignore patterns) and reports what it could not read.
+//! configured ignore patterns), counts what it passes over (symbolic links it
+//! does not follow, special files) and reports what it could not read.
 
+use std::fs::FileType;
+use std::io::ErrorKind;
 use std::path::{Path, PathBuf};
 
 use globset::{Glob, GlobSet, GlobSetBuilder};
@@ -42,6 +45,73 @@ pub struct WalkProblem {
 pub struct WalkResult {
     pub files: Vec<FoundFile>,
     pub problems: Vec<WalkProblem>,
+    /// Symbolic links passed over because links are not followed.
+    pub skipped_symlinks: usize,
+    /// FIFOs, sockets and devices: never opened (reading a FIFO would block).
+    pub skipped_special_files: usize,
+}
+
+impl WalkOptions {
+    /// Fails on an invalid ignore pattern, so that a run can be refused
+    /// before anything is written.
+    pub fn check(&self) -> Result<(), EngineError> {
+        build_ignore_set(&self.ignore_patterns).map(drop)
+    }
+}
+
+/// Checks that `root` can be walked (it exists, is a folder and can be
+/// listed) and returns its canonical path, the form a collection stores.
+pub fn resolve_root(root: &Path) -> Result<PathBuf, EngineError> {
+    let refused = |error: std::io::Error| match error.kind() {
+        ErrorKind::NotFound => EngineError::RootNotFound {
+            root: root.to_path_buf(),
+        },
+        _ => EngineError::UnreadableRoot {
+            root: root.to_path_buf(),
+            message: error.to_string(),
+        },
+    };
+    let canonical = root.canonicalize().map_err(refused)?;
+    let file_type = std::fs::metadata(&canonical).map_err(refused)?.file_type();
+    if !file_type.is_dir() {
+        return Err(not_a_folder(root, file_type));
+    }
+    std::fs::read_dir(&canonical).map_err(refused)?;
+    Ok(canonical)
+}
+
+/// A collection stores a root as a folder and each image by its path relative
+/// to it; a file root would be stored with an empty path. Indexing it under its
+/// file name would need its parent as the root, and every later rescan of that
+/// root would then take in the file's siblings too, so it is refused instead.
+fn not_a_folder(root: &Path, file_type: FileType) -> EngineError {
+    EngineError::RootNotAFolder {
+        root: root.to_path_buf(),
+        kind: kind_of(file_type),
+    }
+}
+
+/// "a file", "a FIFO", ...: what a root that is not a folder is, for messages
+/// (its symbolic links are already resolved).
+fn kind_of(file_type: FileType) -> &'static str {
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::FileTypeExt;
+        if file_type.is_fifo() {
+            return "a FIFO";
+        }
+        if file_type.is_socket() {
+            return "a socket";
+        }
+        if file_type.is_block_device() || file_type.is_char_device() {
+            return "a device";
+        }
+    }
+    if file_type.is_file() {
+        "a file"
+    } else {
+        "a special file"
+    }
 }
 
 fn build_ignore_set(patterns: &[String]) -> Result<GlobSet, EngineError> {
@@ -69,11 +139,21 @@ fn relative_string(root: &Path, path: &Path) -> String {
         .join("/")
 }
 
+/// A folder under `root` named for a message: its relative path, or "the root
+/// folder" for the root itself (whose relative path is empty).
+fn describe_folder(root: &Path, folder: &Path) -> String {
+    match relative_string(root, folder) {
+        rel if rel.is_empty() => "the root folder".into(),
+        rel => rel,
+    }
+}
+
 fn is_hidden(name: &std::ffi::OsStr) -> bool {
     name.to_string_lossy().starts_with('.')
 }
 
-/// Lists the regular files under `root`, sorted by relative path.
+/// Lists the regular files under `root`, sorted by relative path. `root`
+/// must be a folder.
 pub fn walk_root(root: &Path, options: &WalkOptions) -> Result<WalkResult, EngineError> {
     let ignore = build_ignore_set(&options.ignore_patterns)?;
     let mut result = WalkResult::default();
@@ -89,7 +169,23 @@ pub fn walk_root(root: &Path, options: &WalkOptions) -> Result<WalkResult, Engin
     for entry in walker {
         match entry {
             Ok(entry) => {
-                if !entry.file_type().is_file() {
+                let file_type = entry.file_type();
+                if entry.depth() == 0 {
+                    if !file_type.is_dir() {
+                        return Err(not_a_folder(root, file_type));
+                    }
+                    continue;
+                }
+                if file_type.is_dir() {
+                    continue;
+                }
+                // Followed links report their target's type; only unfollowed ones are links here.
+                if file_type.is_symlink() {
+                    result.skipped_symlinks += 1;
+                    continue;
+                }
+                if !file_type.is_file() {
+                    result.skipped_special_files += 1;
                     continue;
                 }
                 let rel_path = relative_string(root, entry.path());
@@ -114,7 +210,7 @@ pub fn walk_root(root: &Path, options: &WalkOptions) -> Result<WalkResult, Engin
                 let reason = match err.loop_ancestor() {
                     Some(ancestor) => format!(
                         "symbolic link loop back to {}",
-                        relative_string(root, ancestor)
+                        describe_folder(root, ancestor)
                     ),
                     None => format!("cannot read: {err}"),
                 };

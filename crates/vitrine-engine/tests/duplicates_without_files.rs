@@ -5,7 +5,7 @@
 
 use anyhow::Result;
 use vitrine_engine::catalog::Catalog;
-use vitrine_engine::duplicates::{find_duplicates, DuplicateOptions, Verification};
+use vitrine_engine::duplicates::{find_duplicates, DuplicateOptions, DuplicateTier, Verification};
 use vitrine_store::{ChangeSet, ImageRecord, ModelFingerprint, Store, Upsert};
 
 fn unit(v: &[f32]) -> Vec<f32> {
@@ -13,9 +13,16 @@ fn unit(v: &[f32]) -> Vec<f32> {
     v.iter().map(|x| x / norm).collect()
 }
 
-#[test]
-fn without_a_verifier_near_pairs_fall_back_to_the_threshold_and_say_so() -> Result<()> {
-    let dir = tempfile::tempdir()?;
+/// One synthetic file of a store whose image files do not exist.
+struct Synthetic {
+    embedding: Vec<f32>,
+    /// Files with equal `content` are byte-identical copies.
+    content: u8,
+    side: u32,
+}
+
+/// A real store holding `files` as `image{i}.png` under a missing root.
+fn store_of(dir: &std::path::Path, files: &[Synthetic]) -> Result<Store> {
     let fingerprint = ModelFingerprint {
         model_id: "synthetic".into(),
         weights_sha256: String::new(),
@@ -23,8 +30,38 @@ fn without_a_verifier_near_pairs_fall_back_to_the_threshold_and_say_so() -> Resu
         pooling: "cls".into(),
         dim: 4,
     };
-    let mut store = Store::create_or_open(&dir.path().join("store"), &fingerprint)?;
-    let root = store.add_root(&dir.path().join("missing-images"))?;
+    let mut store = Store::create_or_open(&dir.join("store"), &fingerprint)?;
+    let root = store.add_root(&dir.join("missing-images"))?;
+    let upserts = files
+        .iter()
+        .enumerate()
+        .map(|(i, file)| Upsert {
+            replaces: None,
+            record: ImageRecord {
+                root,
+                rel_path: format!("image{i}.png"),
+                byte_size: 100 + i as u64,
+                modified_unix_ns: 0,
+                content_hash: [file.content; 32],
+                pixel_hash: [file.content; 32],
+                width: file.side,
+                height: file.side,
+                split: None,
+                label: None,
+            },
+            embedding: file.embedding.clone(),
+        })
+        .collect();
+    store.commit(ChangeSet {
+        upserts,
+        ..ChangeSet::default()
+    })?;
+    Ok(store)
+}
+
+#[test]
+fn without_a_verifier_near_pairs_fall_back_to_the_threshold_and_say_so() -> Result<()> {
+    let dir = tempfile::tempdir()?;
     // Two near pairs (cosines 0.995 and 0.8) and a loner, by construction.
     let vectors = [
         unit(&[1.0, 0.1, 0.0, 0.0]),
@@ -33,30 +70,16 @@ fn without_a_verifier_near_pairs_fall_back_to_the_threshold_and_say_so() -> Resu
         unit(&[0.0, 1.0, 0.75, 0.0]),
         unit(&[0.0, 0.0, 0.0, 1.0]),
     ];
-    let upserts = vectors
+    let files: Vec<Synthetic> = vectors
         .iter()
         .enumerate()
-        .map(|(i, embedding)| Upsert {
-            replaces: None,
-            record: ImageRecord {
-                root,
-                rel_path: format!("image{i}.png"),
-                byte_size: 100 + i as u64,
-                modified_unix_ns: 0,
-                content_hash: [i as u8; 32],
-                pixel_hash: [i as u8; 32],
-                width: 10,
-                height: 10,
-                split: None,
-                label: None,
-            },
+        .map(|(i, embedding)| Synthetic {
             embedding: embedding.clone(),
+            content: i as u8,
+            side: 10,
         })
         .collect();
-    store.commit(ChangeSet {
-        upserts,
-        ..ChangeSet::default()
-    })?;
+    let store = store_of(dir.path(), &files)?;
     let catalog = Catalog::load(&store)?;
     let options = DuplicateOptions {
         near_duplicate_threshold: 0.9,
@@ -93,6 +116,47 @@ fn without_a_verifier_near_pairs_fall_back_to_the_threshold_and_say_so() -> Resu
     );
     for member in report.groups.iter().flat_map(|g| &g.members) {
         assert_eq!(member.verification, Some(Verification::ThresholdOnly));
+    }
+    Ok(())
+}
+
+/// The keeper is no copy of itself, and a member's tier names the closest
+/// link it has: three byte-identical files under a larger keeper of other
+/// content are near copies of the keeper and bytes copies of each other.
+#[test]
+fn members_name_the_closest_link_and_the_keeper_has_none() -> Result<()> {
+    let dir = tempfile::tempdir()?;
+    let copy = unit(&[1.0, 0.05, 0.0, 0.0]);
+    let mut files = vec![Synthetic {
+        embedding: unit(&[1.0, 0.0, 0.0, 0.0]),
+        content: 1,
+        side: 40,
+    }];
+    files.extend((0..3).map(|_| Synthetic {
+        embedding: copy.clone(),
+        content: 2,
+        side: 10,
+    }));
+    let store = store_of(dir.path(), &files)?;
+    let catalog = Catalog::load(&store)?;
+    let options = DuplicateOptions {
+        near_duplicate_threshold: 0.9,
+        ..DuplicateOptions::default()
+    };
+    let report = find_duplicates(&store, &catalog, &options, None)?;
+    assert_eq!(report.groups.len(), 1);
+    let group = &report.groups[0];
+    assert_eq!(group.tier, DuplicateTier::Near);
+    let members = &group.members;
+    assert_eq!(members[0].image.path, "image0.png", "the largest is kept");
+    assert!(members[0].keeper);
+    assert_eq!(members[0].tier, None);
+    assert_eq!(members[0].copy_of, None);
+    assert_eq!(members[1].tier, Some(DuplicateTier::Near));
+    assert_eq!(members[1].copy_of, Some(members[0].image.id));
+    for member in &members[2..] {
+        assert_eq!(member.tier, Some(DuplicateTier::Bytes));
+        assert_eq!(member.copy_of, Some(members[1].image.id));
     }
     Ok(())
 }

@@ -146,9 +146,9 @@ pub fn decode_bytes(bytes: &[u8], opts: &DecodeOptions) -> Result<DecodedImage, 
 /// Width and height after EXIF orientation, from the header only (no pixel
 /// data is decoded).
 pub fn read_dimensions(path: &Path) -> Result<(u32, u32), ImagingError> {
-    let io_error = |source| ImagingError::Io {
+    let io_error = |cause| ImagingError::Io {
         path: path.to_path_buf(),
-        source,
+        cause,
     };
     let file = File::open(path).map_err(io_error)?;
     if file.metadata().map_err(io_error)?.len() == 0 {
@@ -187,9 +187,9 @@ pub fn dct_reduction(shorter_side: u32, target_shorter_side: u32) -> Option<u8> 
 }
 
 fn read_file(path: &Path, max_file_bytes: u64) -> Result<Vec<u8>, ImagingError> {
-    let io_error = |source| ImagingError::Io {
+    let io_error = |cause| ImagingError::Io {
         path: path.to_path_buf(),
-        source,
+        cause,
     };
     // File::open opens read-only; nothing here ever writes to user files.
     let file = File::open(path).map_err(io_error)?;

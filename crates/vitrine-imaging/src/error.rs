@@ -6,11 +6,12 @@ use std::path::PathBuf;
 /// cut short" differently from "this is not an image at all".
 #[derive(Debug, thiserror::Error)]
 pub enum ImagingError {
-    #[error("cannot read image file {path}: {source}")]
+    /// The cause is part of the message and not a `source`, so that a
+    /// report of the whole chain does not say it twice.
+    #[error("cannot read image file {path}: {cause}")]
     Io {
         path: PathBuf,
-        #[source]
-        source: std::io::Error,
+        cause: std::io::Error,
     },
     #[error("image file is empty")]
     EmptyFile,

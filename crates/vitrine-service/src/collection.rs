@@ -13,20 +13,24 @@
 //! whole-collection analyses wait a bounded time and then answer 503.
 
 use std::path::PathBuf;
-use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::sync::atomic::{AtomicBool, AtomicU64, AtomicU8, Ordering};
 use std::sync::{Arc, OnceLock};
 use std::time::Duration;
 
 use parking_lot::{Mutex, RwLock};
+use serde::Serialize;
+use utoipa::ToSchema;
 use vitrine_engine::catalog::{dot, Catalog};
 use vitrine_engine::clusters::ClusterReport;
 use vitrine_engine::duplicates::{DuplicateReport, LeakReport};
 use vitrine_engine::labels::{LabelSuggestion, LabelSuspect};
-use vitrine_engine::neighbours::{nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter};
+use vitrine_engine::neighbours::{
+    check_k, nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter,
+};
 use vitrine_engine::verify::{PairVerifier, VerifyOptions};
 use vitrine_engine::EngineError;
 use vitrine_model::encoder::Encoder;
-use vitrine_store::{FileError, ImageId, ImageRecord, ModelFingerprint, Store};
+use vitrine_store::{FileError, ImageId, ModelFingerprint, Store};
 
 use crate::api::analyses::NearKey;
 use crate::error::ApiError;
@@ -89,6 +93,31 @@ impl<K: PartialEq, V> Memo<K, V> {
     }
 }
 
+/// Where the default duplicate and leak reports of a collection stand.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, ToSchema)]
+#[serde(rename_all = "snake_case")]
+pub enum PrecomputedReports {
+    /// Not computed at start (`precompute = false`): the first reader computes them.
+    Off,
+    /// Waiting for another collection's reports to finish.
+    Queued,
+    Computing,
+    Ready,
+    /// Computing them failed (logged); the first reader tries again.
+    Failed,
+}
+
+impl PrecomputedReports {
+    /// In declaration order, so that `ALL[state as usize] == state`.
+    const ALL: [Self; 5] = [
+        Self::Off,
+        Self::Queued,
+        Self::Computing,
+        Self::Ready,
+        Self::Failed,
+    ];
+}
+
 /// What a neighbour query starts from.
 pub enum Query<'a> {
     Image(ImageId),
@@ -110,6 +139,8 @@ pub struct Collection {
     verifier: OnceLock<Arc<PairVerifier>>,
     /// Set when the service shuts down: verification stops, now and later.
     verification_stopped: AtomicBool,
+    /// A [`PrecomputedReports`] as its discriminant.
+    precomputed: AtomicU8,
     /// Clusterings by (requested number of clusters, seed).
     pub clusters: Memo<(Option<usize>, u64), ClusterReport>,
     /// Label suggestions by (k, min_confidence bits).
@@ -132,6 +163,7 @@ impl Collection {
             leaks: Memo::default(),
             verifier: OnceLock::new(),
             verification_stopped: AtomicBool::new(false),
+            precomputed: AtomicU8::new(0),
             clusters: Memo::default(),
             label_suggestions: Memo::default(),
             label_suspects: Memo::default(),
@@ -158,6 +190,14 @@ impl Collection {
         if let Some(verifier) = self.verifier.get() {
             verifier.stop();
         }
+    }
+
+    pub fn precomputed_reports(&self) -> PrecomputedReports {
+        PrecomputedReports::ALL[usize::from(self.precomputed.load(Ordering::SeqCst))]
+    }
+
+    pub fn set_precomputed_reports(&self, state: PrecomputedReports) {
+        self.precomputed.store(state as u8, Ordering::SeqCst);
     }
 
     pub fn verification_stopped(&self) -> bool {
@@ -251,21 +291,6 @@ fn unit_query(catalog: &Catalog, vector: &[f32]) -> Result<Vec<f32>, ApiError> {
     Ok(vector.iter().map(|v| v / norm).collect())
 }
 
-fn accepts(filter: &NeighbourFilter, record: &ImageRecord) -> bool {
-    filter
-        .split
-        .as_ref()
-        .is_none_or(|s| record.split.as_ref() == Some(s))
-        && filter
-            .label
-            .as_ref()
-            .is_none_or(|l| record.label.as_ref() == Some(l))
-        && filter
-            .path_prefix
-            .as_ref()
-            .is_none_or(|p| record.rel_path.starts_with(p.as_str()))
-}
-
 /// Brute-force nearest neighbours over a catalog, with the same validation
 /// and exclusions as the engine's index search.
 fn exact_nearest(
@@ -281,10 +306,14 @@ fn exact_nearest(
         }
         Query::Vector(vector) => (unit_query(catalog, vector)?, None),
     };
+    check_k(k)?;
     let mut scored: Vec<(usize, f32)> = (0..catalog.len())
-        .filter(|&row| Some(row) != exclude && accepts(filter, &catalog.records[row]))
+        .filter(|&row| Some(row) != exclude && filter.accepts_record(&catalog.records[row]))
         .map(|row| (row, dot(&vector, catalog.embedding_at(row))))
         .collect();
+    if scored.is_empty() {
+        filter.check_matches_some(catalog)?;
+    }
     scored.sort_unstable_by(|a, b| b.1.total_cmp(&a.1));
     scored.truncate(k);
     Ok(scored

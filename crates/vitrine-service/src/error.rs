@@ -39,6 +39,8 @@ pub enum ServiceError {
     Metrics(#[from] prometheus::Error),
     #[error("server stopped with an error: {0}")]
     Run(#[source] std::io::Error),
+    #[error("cannot start the background threads: {0}")]
+    BackgroundThreads(#[source] rayon::ThreadPoolBuildError),
 }
 
 /// The body of every error response.
@@ -169,10 +171,13 @@ impl From<ImagingError> for ApiError {
 
 impl From<EngineError> for ApiError {
     fn from(err: EngineError) -> Self {
-        let message = err.to_string();
+        let message = vitrine_engine::error::describe(&err);
         match err {
             EngineError::UnknownImage(_) => Self::not_found("unknown_image", message),
             EngineError::InvalidArgument(_) => Self::bad_request("invalid_argument", message),
+            EngineError::UnknownSplit { .. } => Self::bad_request("unknown_split", message),
+            EngineError::UnknownLabel { .. } => Self::bad_request("unknown_label", message),
+            EngineError::NoImageMatches(_) => Self::bad_request("no_image_matches", message),
             EngineError::ModelNotCollectionModel { .. } => {
                 Self::new(StatusCode::CONFLICT, "model_mismatch", message)
             }

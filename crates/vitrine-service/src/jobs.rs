@@ -11,7 +11,8 @@ use std::time::{SystemTime, UNIX_EPOCH};
 use parking_lot::{Condvar, Mutex};
 use serde::Serialize;
 use utoipa::ToSchema;
-use vitrine_engine::ingest::{IndexProgress, IndexReport};
+use vitrine_engine::ingest::IndexReport;
+use vitrine_engine::progress::Progress;
 
 use crate::error::ApiError;
 
@@ -138,9 +139,9 @@ impl Job {
     }
 }
 
-impl IndexProgress for Job {
+impl Progress for Job {
     // Called once per root: totals add up over the roots.
-    fn begin(&self, files_to_process: u64) {
+    fn begin(&self, _steps: &str, files_to_process: u64) {
         self.total.fetch_add(files_to_process, Ordering::Relaxed);
     }
     fn advance(&self, files_done: u64) {
@@ -165,11 +166,14 @@ pub struct Jobs {
     slot_freed: Condvar,
     closing: AtomicBool,
     threads: Mutex<Vec<JoinHandle<()>>>,
+    /// Where jobs run their parallel work (see [`background_pool`]).
+    pool: Arc<rayon::ThreadPool>,
 }
 
 impl Jobs {
-    pub fn new(slots: usize) -> Self {
+    pub fn new(slots: usize, pool: Arc<rayon::ThreadPool>) -> Self {
         Self {
+            pool,
             next_id: AtomicU64::new(1),
             table: Mutex::new(BTreeMap::new()),
             free_slots: Mutex::new(slots.max(1)),
@@ -214,7 +218,10 @@ impl Jobs {
         let thread_job = job.clone();
         let handle = std::thread::Builder::new()
             .name(format!("vitrine-job-{id}"))
-            .spawn(move || jobs.run(&thread_job, work))
+            .spawn(move || {
+                let pool = jobs.pool.clone();
+                pool.install(|| jobs.run(&thread_job, work))
+            })
             .map_err(|e| ApiError::internal(format!("cannot start a job thread: {e}")))?;
         let mut threads = self.threads.lock();
         threads.retain(|t| !t.is_finished());
@@ -293,4 +300,16 @@ impl Jobs {
             }
         }
     }
+}
+
+/// The thread pool of background work (index jobs, precomputed reports).
+/// Interactive requests (a search by upload, a neighbour query) run their
+/// parallel work on rayon's global pool instead: rayon's workers finish
+/// their own queue before taking outside work, so sharing one pool made a
+/// search wait for a whole round of background verification. With two pools
+/// the operating system shares the cores between them.
+pub fn background_pool() -> Result<rayon::ThreadPool, rayon::ThreadPoolBuildError> {
+    rayon::ThreadPoolBuilder::new()
+        .thread_name(|i| format!("vitrine-background-{i}"))
+        .build()
 }

@@ -72,12 +72,16 @@ async fn time_limit(
     let limit = req
         .app_data::<web::Data<AppState>>()
         .map_or(30, |s| s.settings.request_timeout_s);
+    let request = format!("{} {}", req.method(), req.path());
     match actix_web::rt::time::timeout(Duration::from_secs(limit), next.call(req)).await {
         Ok(response) => response,
-        Err(_) => Err(ApiError::unavailable(
-            "request_timeout",
-            format!("the request took longer than {limit} s"),
-        )
+        Err(_) => Err({
+            tracing::warn!(%request, limit_s = limit, "request timed out");
+            ApiError::unavailable(
+                "request_timeout",
+                format!("the request took longer than {limit} s"),
+            )
+        }
         .into()),
     }
 }

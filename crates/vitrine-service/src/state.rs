@@ -13,7 +13,7 @@ use vitrine_store::ModelFingerprint;
 
 use crate::collection::Collection;
 use crate::error::{ApiError, ServiceError};
-use crate::jobs::Jobs;
+use crate::jobs::{background_pool, Jobs};
 use crate::metrics::Metrics;
 use crate::settings::ServeSettings;
 use crate::thumbnails::Thumbnails;
@@ -57,6 +57,8 @@ pub struct AppState {
     pub metrics: Metrics,
     /// Limits applied to uploaded images.
     pub upload_limits: DecodeOptions,
+    /// Background work's own threads (see [`crate::jobs::background_pool`]).
+    pub background: Arc<rayon::ThreadPool>,
 }
 
 fn valid_collection_name(name: &str) -> bool {
@@ -105,9 +107,11 @@ impl AppState {
             max_file_bytes: settings.max_body_bytes as u64,
             target_shorter_side: None,
         };
+        let background = Arc::new(background_pool().map_err(ServiceError::BackgroundThreads)?);
         Ok(Self {
             token: settings.effective_token(),
-            jobs: Arc::new(Jobs::new(settings.heavy_jobs)),
+            jobs: Arc::new(Jobs::new(settings.heavy_jobs, background.clone())),
+            background,
             thumbnails: Thumbnails::new(settings.thumbnail_cache_entries),
             metrics: Metrics::new()?,
             collections,

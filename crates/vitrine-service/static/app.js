@@ -19,6 +19,12 @@
   const SPLIT_COLOURS = { train: '#1f4e8c', val: '#c2410c', validation: '#c2410c', test: '#1d6a38', '(none)': '#6b717b' };
   const OTHER_SPLIT_COLOURS = ['#6a3d9e', '#8a4a08', '#0f5f5a', '#a3261b'];
   const SPLIT_ORDER = ['train', 'val', 'validation', 'test'];
+  // The formats the indexer reads. Browsers name some of these types their own
+  // way (image/x-ms-bmp) or leave the type empty, so the file name decides then;
+  // the service tells the format from the bytes in any case.
+  const UPLOAD_TYPES = ['image/jpeg', 'image/png', 'image/webp', 'image/gif', 'image/bmp', 'image/tiff'];
+  const UPLOAD_EXTENSIONS = ['jpg', 'jpeg', 'jpe', 'jfif', 'png', 'webp', 'gif', 'bmp', 'dib', 'tif', 'tiff'];
+  const UPLOAD_FORMATS_TEXT = 'JPEG, PNG, WebP, GIF, BMP or TIFF';
 
   const state = {
     collections: [],
@@ -208,7 +214,8 @@
   function parseHash() {
     const raw = location.hash.replace(/^#/, '');
     const [path, qs = ''] = raw.split('?');
-    return { path: path && path.startsWith('/') ? path : '/search', params: new URLSearchParams(qs) };
+    // '#/' names no view, like an empty hash: both open the default one.
+    return { path: path && path !== '/' && path.startsWith('/') ? path : '/search', params: new URLSearchParams(qs) };
   }
 
   function href(path, params = {}) {
@@ -614,10 +621,11 @@
     if (queryId) state.searchFile = null;
 
     const uploadOff = state.status && state.status.model_loaded === false;
-    const fileInput = h('input', { type: 'file', id: 'query-file', accept: 'image/jpeg,image/png,image/webp', class: 'visually-hidden' });
+    const accept = [...UPLOAD_TYPES, ...UPLOAD_EXTENSIONS.map((ext) => `.${ext}`)].join(',');
+    const fileInput = h('input', { type: 'file', id: 'query-file', accept, class: 'visually-hidden' });
     const dropzone = h('div', { class: 'dropzone', dataset: { testid: 'dropzone' } },
       h('strong', {}, 'Drop an image here'),
-      h('p', {}, 'JPEG, PNG or WebP. It is compared with the collection, not added to it.'),
+      h('p', {}, `${UPLOAD_FORMATS_TEXT}. It is compared with the collection, not added to it.`),
       h('label', { for: 'query-file', class: 'button primary' }, 'Choose an image…'),
       uploadOff ? h('p', { role: 'note' }, 'The service has not loaded this collection’s model, so uploaded images cannot be compared. Indexed images still can.') : null,
       fileInput);
@@ -634,8 +642,8 @@
 
     const useFile = (file) => {
       if (!file) return;
-      if (!['image/jpeg', 'image/png', 'image/webp'].includes(file.type)) {
-        results.replaceChildren(errorState(new ApiError(0, 'unsupported_type', `${file.name} is not a JPEG, PNG or WebP image.`)));
+      if (!isUploadable(file)) {
+        results.replaceChildren(errorState(new ApiError(0, 'unsupported_type', `${file.name} is not a ${UPLOAD_FORMATS_TEXT} image.`)));
         return;
       }
       state.searchFile = file;
@@ -659,6 +667,27 @@
         emptyState('No query yet.', 'Drop or choose an image, or pick one from the collection below.'));
     }
     renderBrowse(ctx, filters, browse);
+  }
+
+  /** Whether the service can read `file`: by its type, else by its file name. */
+  function isUploadable(file) {
+    if (UPLOAD_TYPES.includes(file.type)) return true;
+    const dot = file.name.lastIndexOf('.');
+    return dot > 0 && UPLOAD_EXTENSIONS.includes(file.name.slice(dot + 1).toLowerCase());
+  }
+
+  /** The upload's Content-Type: the service takes any image type, or octet-stream when the browser named none. */
+  function uploadType(file) {
+    return file.type.startsWith('image/') ? file.type : 'application/octet-stream';
+  }
+
+  /** The uploaded query as the browser shows it; some formats (TIFF) it cannot show. */
+  function uploadPreview(file) {
+    const img = h('img', { src: state.searchFileUrl, alt: `query: uploaded file ${file.name}` });
+    img.addEventListener('error', () => {
+      img.replaceWith(h('span', { class: 'missing', dataset: { testid: 'no-preview' } }, `No preview: this browser cannot show ${file.name}.`));
+    }, { once: true });
+    return img;
   }
 
   function searchFilters(filters) {
@@ -701,7 +730,7 @@
     } else {
       const file = state.searchFile;
       preview.replaceChildren(h('p', { class: 'side-label' }, 'Query: your image'),
-        h('img', { src: state.searchFileUrl, alt: `query: uploaded file ${file.name}` }),
+        uploadPreview(file),
         h('p', { class: 'path' }, `${file.name} · ${formatBytes(file.size)}`));
     }
 
@@ -714,7 +743,7 @@
         : await api(collectionPath('/search') + queryString(q), {
           method: 'POST',
           body: state.searchFile,
-          headers: { 'Content-Type': state.searchFile.type },
+          headers: { 'Content-Type': uploadType(state.searchFile) },
           signal: ctx.signal,
         });
       const hits = listOf(data, 'hits', 'neighbours', 'results').map(imageOf)
@@ -940,7 +969,7 @@
           'At a lower threshold looser near-duplicates are reported too.');
       }
       const offset = (page - 1) * perPage;
-      const list = h('ol', { class: 'review-list tiles', dataset: { testid: 'leaks' }, 'aria-label': 'Leaked pairs' });
+      const list = h('ol', { class: 'review-list leak-grid', dataset: { testid: 'leaks' }, 'aria-label': 'Leaked pairs' });
       const fragment = document.createDocumentFragment();
       leaks.forEach((leak, index) => fragment.append(h('li', {}, leakPair(leak, offset + index + 1, reference))));
       list.append(fragment);

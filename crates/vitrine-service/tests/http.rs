@@ -281,6 +281,38 @@ fn bad_requests_get_json_errors_and_change_nothing() -> Result<()> {
                     "unknown_image",
                 ),
                 (
+                    "unknown split in a listing",
+                    client.get(api("/images?split=tset")),
+                    Body::Empty,
+                    400,
+                    "unknown_split",
+                ),
+                (
+                    "unknown label for neighbours",
+                    client.get(api(&format!("/images/{id}/neighbours?label=lampp"))),
+                    Body::Empty,
+                    400,
+                    "unknown_label",
+                ),
+                (
+                    "filters no image passes",
+                    client.post(api("/search/vector")),
+                    Body::Json(json!({
+                        "vector": vec![0.5f32; 384],
+                        "split": "val",
+                        "prefix": "train/",
+                    })),
+                    400,
+                    "no_image_matches",
+                ),
+                (
+                    "leaks against an unknown split",
+                    client.get(api("/leaks?against=nosuch&verify=false")),
+                    Body::Empty,
+                    400,
+                    "unknown_split",
+                ),
+                (
                     "id not a number",
                     client.get(api("/images/abc")),
                     Body::Empty,

@@ -1,3 +1,4 @@
+use std::io::ErrorKind;
 use std::path::PathBuf;
 
 use crate::types::{ImageId, ModelFingerprint};
@@ -49,14 +50,16 @@ pub enum StoreError {
         waited: std::time::Duration,
     },
 
-    #[error("database error in store at {path}: {source}")]
+    // The cause is a source, not part of the message: a caller printing the
+    // chain (anyhow's `{:#}`) would otherwise print it twice.
+    #[error("database error in store at {path}")]
     Database {
         path: PathBuf,
         #[source]
         source: sled::Error,
     },
 
-    #[error("i/o error on {path}: {source}")]
+    #[error("i/o error on {path}")]
     Io {
         path: PathBuf,
         #[source]
@@ -100,4 +103,81 @@ pub enum StoreError {
 
     #[error("could not write the nearest-neighbour index to {path}: {reason}")]
     IndexDump { path: PathBuf, reason: String },
+}
+
+impl StoreError {
+    /// True when a write failed because the device holding the store is full.
+    /// The last commit is intact then: commits are atomic.
+    pub fn is_storage_full(&self) -> bool {
+        let io_error = match self {
+            StoreError::Io { source, .. } => source,
+            StoreError::Database {
+                source: sled::Error::Io(source),
+                ..
+            } => source,
+            _ => return false,
+        };
+        io_error.kind() == ErrorKind::StorageFull
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use std::io;
+
+    use super::*;
+
+    /// ENOSPC, as the kernel reports a full device to a write.
+    fn no_space() -> io::Error {
+        io::Error::from_raw_os_error(28)
+    }
+
+    #[test]
+    fn a_full_device_is_recognised_in_file_and_database_errors() {
+        let path = PathBuf::from("/data/store");
+        assert!(StoreError::Io {
+            path: path.join("graph/index.hnsw.data"),
+            source: no_space(),
+        }
+        .is_storage_full());
+        assert!(StoreError::Database {
+            path: path.clone(),
+            source: sled::Error::Io(no_space()),
+        }
+        .is_storage_full());
+        // sled hands every later caller a clone of its flusher's error, which
+        // keeps the kind but not the OS code.
+        let cloned = sled::Error::Io(no_space()).clone();
+        assert!(StoreError::Database {
+            path: path.clone(),
+            source: cloned,
+        }
+        .is_storage_full());
+        assert!(!StoreError::Io {
+            path,
+            source: io::Error::from(ErrorKind::PermissionDenied),
+        }
+        .is_storage_full());
+    }
+
+    #[test]
+    fn a_cause_is_printed_once_along_the_chain() {
+        for error in [
+            StoreError::Database {
+                path: PathBuf::from("/data/store"),
+                source: sled::Error::Io(no_space()),
+            },
+            StoreError::Io {
+                path: PathBuf::from("/data/store/graph"),
+                source: no_space(),
+            },
+        ] {
+            let printed = format!("{:#}", anyhow::Error::new(error));
+            assert_eq!(
+                printed.matches("No space left on device").count(),
+                1,
+                "{printed}"
+            );
+        }
+    }
 }

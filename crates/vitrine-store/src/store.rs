@@ -267,6 +267,11 @@ impl Store {
         Ok(store)
     }
 
+    /// The store's directory, for messages that name it.
+    pub fn dir(&self) -> &Path {
+        &self.dir
+    }
+
     pub fn fingerprint(&self) -> &ModelFingerprint {
         &self.fingerprint
     }

@@ -14,7 +14,7 @@ use vitrine_engine::duplicates::{
 use vitrine_engine::verify::PairVerifier;
 
 use super::{blocking, PageWindow, State};
-use crate::collection::{Collection, Snapshot};
+use crate::collection::{Collection, PrecomputedReports, Snapshot};
 use crate::error::{ApiError, ErrorBody};
 use crate::state::{AppState, BUSY_WAIT};
 
@@ -136,8 +136,11 @@ pub struct GroupMember {
     pub root: String,
     pub split: Option<String>,
     pub label: Option<String>,
-    /// How this member relates to the keeper.
-    pub tier: Tier,
+    /// The strongest tier linking this member to the keeper or to a member
+    /// listed before it (`copy_of`); null for the keeper.
+    pub tier: Option<Tier>,
+    /// The id of the member that `tier` relates this one to; null for the keeper.
+    pub copy_of: Option<u64>,
     /// Cosine similarity to the keeper.
     pub similarity: f32,
     /// The suggested image to keep (nothing is deleted).
@@ -151,7 +154,7 @@ pub struct GroupMember {
 
 #[derive(Debug, Serialize, ToSchema)]
 pub struct DuplicateGroupBody {
-    /// The weakest tier linking a member to the keeper.
+    /// The weakest of the members' tiers: the whole group is at least this close.
     pub tier: Tier,
     /// The keeper first, then the others by decreasing similarity.
     pub members: Vec<GroupMember>,
@@ -170,7 +173,8 @@ impl From<&DuplicateGroup> for DuplicateGroupBody {
                     root: m.image.root.clone(),
                     split: m.image.split.clone(),
                     label: m.image.label.clone(),
-                    tier: m.tier.into(),
+                    tier: m.tier.map(Tier::from),
+                    copy_of: m.copy_of,
                     similarity: m.similarity,
                     keeper: m.keeper,
                     check: m.verification.map(PairJudgement::from),
@@ -323,37 +327,53 @@ pub(crate) fn leak_report(
 /// The thread holds the collections open until it ends: a service stopping
 /// stops verification (`Collection::stop_verification`) and then joins it.
 pub fn precompute_reports(state: web::Data<AppState>) -> Option<std::thread::JoinHandle<()>> {
+    for collection in state.collections.values() {
+        collection.set_precomputed_reports(PrecomputedReports::Queued);
+    }
     let spawned = std::thread::Builder::new()
         .name("vitrine-precompute".into())
         .spawn(move || {
-            for collection in state.collections.values() {
-                if collection.verification_stopped() {
-                    return;
-                }
-                let started = std::time::Instant::now();
-                let leak_options = LeakOptions {
-                    evaluated_splits: Vec::new(),
-                    reference_split: state.reference_split.clone(),
-                    duplicates: state.duplicates.clone(),
-                };
-                let outcome = duplicate_report(&state, collection, &state.duplicates)
-                    .and_then(|_| leak_report(&state, collection, &leak_options));
-                match outcome {
-                    Ok(_) => tracing::info!(
-                        collection = %collection.name,
-                        seconds = started.elapsed().as_secs_f64(),
-                        "duplicate and leak reports ready"
-                    ),
-                    Err(err) => tracing::warn!(
-                        collection = %collection.name,
-                        "could not precompute reports: {err}"
-                    ),
-                }
-            }
+            let pool = state.background.clone();
+            pool.install(|| precompute_each(&state))
         });
     spawned
         .inspect_err(|err| tracing::warn!("could not start precomputing reports: {err}"))
         .ok()
+}
+
+/// The default duplicate and leak reports of every collection, in turn.
+fn precompute_each(state: &AppState) {
+    for collection in state.collections.values() {
+        if collection.verification_stopped() {
+            return;
+        }
+        collection.set_precomputed_reports(PrecomputedReports::Computing);
+        let started = std::time::Instant::now();
+        let leak_options = LeakOptions {
+            evaluated_splits: Vec::new(),
+            reference_split: state.reference_split.clone(),
+            duplicates: state.duplicates.clone(),
+        };
+        let outcome = duplicate_report(state, collection, &state.duplicates)
+            .and_then(|_| leak_report(state, collection, &leak_options));
+        match outcome {
+            Ok(_) => {
+                collection.set_precomputed_reports(PrecomputedReports::Ready);
+                tracing::info!(
+                    collection = %collection.name,
+                    seconds = started.elapsed().as_secs_f64(),
+                    "duplicate and leak reports ready"
+                )
+            }
+            Err(err) => {
+                collection.set_precomputed_reports(PrecomputedReports::Failed);
+                tracing::warn!(
+                    collection = %collection.name,
+                    "could not precompute reports: {err}"
+                )
+            }
+        }
+    }
 }
 
 /// Groups of identical and near-duplicate images (a report: nothing is deleted).

@@ -113,6 +113,8 @@ impl From<&ClusterSummary> for ClusterBody {
 #[derive(Debug, Serialize, ToSchema)]
 pub struct ClustersBody {
     pub n_clusters: usize,
+    /// Set when the number of clusters asked for could not be given.
+    pub note: Option<String>,
     pub seed: u64,
     /// Largest first.
     pub clusters: Vec<ClusterBody>,
@@ -141,6 +143,7 @@ pub async fn summaries(
         blocking(move || clustering(&collection, &collection.snapshot(), &options)).await?;
     Ok(HttpResponse::Ok().json(ClustersBody {
         n_clusters: report.n_clusters,
+        note: report.note.clone(),
         seed: report.seed,
         clusters: report.clusters.iter().map(ClusterBody::from).collect(),
     }))

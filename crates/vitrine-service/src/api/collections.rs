@@ -7,7 +7,7 @@ use serde::{Deserialize, Serialize};
 use utoipa::{IntoParams, ToSchema};
 
 use super::{PageWindow, State};
-use crate::collection::{Collection, Snapshot};
+use crate::collection::{Collection, PrecomputedReports, Snapshot};
 use crate::error::{ApiError, ErrorBody};
 use crate::state::AppState;
 
@@ -40,6 +40,9 @@ pub struct CollectionStatus {
     /// Whether search by uploaded image (and rescans) can run: the loaded
     /// model is the collection's.
     pub model_loaded: bool,
+    /// Where the default duplicate and leak reports, computed in the
+    /// background at start, stand. Searches never wait for them.
+    pub precomputed_reports: PrecomputedReports,
 }
 
 #[derive(Debug, Serialize, ToSchema)]
@@ -81,6 +84,7 @@ fn status_of(state: &AppState, collection: &Collection, snapshot: &Snapshot) -> 
         },
         index_disk_bytes: snapshot.index_disk_bytes,
         model_loaded: state.encoder_for(fingerprint).is_ok(),
+        precomputed_reports: collection.precomputed_reports(),
     }
 }
 

@@ -102,22 +102,10 @@ pub async fn list(
     let query = query.into_inner();
     let snapshot = collection.snapshot();
     let records = &snapshot.catalog.records;
+    let filter = filter_of(query.split, query.label, query.prefix);
+    filter.check_known(&snapshot.catalog)?;
     let mut rows: Vec<usize> = (0..records.len())
-        .filter(|&row| {
-            let r = &records[row];
-            query
-                .split
-                .as_ref()
-                .is_none_or(|s| r.split.as_ref() == Some(s))
-                && query
-                    .label
-                    .as_ref()
-                    .is_none_or(|l| r.label.as_ref() == Some(l))
-                && query
-                    .prefix
-                    .as_ref()
-                    .is_none_or(|p| r.rel_path.starts_with(p.as_str()))
-        })
+        .filter(|&row| filter.accepts_record(&records[row]))
         .collect();
     rows.sort_by_key(|&row| snapshot.catalog.ids[row]);
     let items = rows[window.range(rows.len())]

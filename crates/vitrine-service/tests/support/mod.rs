@@ -13,7 +13,8 @@ use anyhow::{Context, Result};
 use image::{Rgb, RgbImage};
 use serde_json::Value;
 use vitrine_engine::duplicates::DuplicateOptions;
-use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions, NoProgress};
+use vitrine_engine::ingest::{fingerprint_of, index_roots, IndexOptions};
+use vitrine_engine::progress::NoProgress;
 use vitrine_model::encoder::Encoder;
 use vitrine_model::fetch::{default_model_root, DEFAULT_WHEEL};
 use vitrine_service::{Model, ServeSettings, Service, ServiceConfig};
@@ -122,10 +123,23 @@ pub fn index_options() -> IndexOptions {
 
 impl Fixture {
     pub fn new() -> Result<Self> {
+        Self::with_extra_pictures(0)
+    }
+
+    /// The usual images plus `extra` more under `train/extra/`, each near
+    /// others of its pattern, so that near-pair checks have work to do.
+    pub fn with_extra_pictures(extra: u32) -> Result<Self> {
         let dir = tempfile::tempdir()?;
         let root = dir.path().join("images");
         let store_dir = dir.path().join("store");
         write_images(&root)?;
+        if extra > 0 {
+            let folder = root.join("train/extra");
+            std::fs::create_dir_all(&folder)?;
+            for i in 0..extra {
+                picture(i as usize, 100 + i, 160).save(folder.join(format!("extra-{i}.png")))?;
+            }
+        }
         let encoder = encoder();
         let (ids, embeddings, paths) = {
             let mut store = Store::create_or_open(&store_dir, &fingerprint_of(&encoder))?;
