@@ -18,7 +18,8 @@ use vitrine_engine::duplicates::{
 };
 use vitrine_engine::ingest::{fingerprint_of, index_roots, resolve_roots, IndexOptions};
 use vitrine_engine::labels::{
-    find_label_suspects, suggest_labels, LabelOptions, LabelSuggestion, LabelSuspect,
+    find_label_suspects, suggest_labels, LabelMethod, LabelOptions, LabelSuggestion, LabelSuspect,
+    SuggestionReport, SuspectReport,
 };
 use vitrine_engine::neighbours::{nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter};
 use vitrine_engine::splits::SplitRule;
@@ -139,41 +140,68 @@ pub enum Command {
 
 #[derive(Subcommand, Debug)]
 pub enum LabelCommand {
-    /// Suggest labels for unlabelled images from their labelled neighbours.
+    /// Suggest labels for unlabelled images, most certain first.
     Suggest {
         #[command(flatten)]
-        vote: VoteArgs,
+        judge: LabelArgs,
+        /// Instead of --min-confidence: suggest for this share of the
+        /// unlabelled images, the most certain ones (0.5: the surer half).
+        #[arg(long, value_name = "SHARE")]
+        coverage: Option<f64>,
         #[command(flatten)]
         output: OutputArgs,
     },
-    /// Labelled images whose neighbours disagree with their label.
+    /// Labelled images that the rest of the collection contradicts, most
+    /// doubtful first, with counts per label.
     Suspects {
         #[command(flatten)]
-        vote: VoteArgs,
-        /// Minimum share of the vote against the image's own label.
-        #[arg(long, default_value_t = 0.7)]
+        judge: LabelArgs,
+        /// Neighbour vote: the least share of the vote against the image's own label.
+        #[arg(long, default_value_t = LabelOptions::default().min_disagreement)]
         min_disagreement: f32,
         #[command(flatten)]
         output: OutputArgs,
     },
 }
 
-#[derive(Args, Debug)]
-pub struct VoteArgs {
-    /// Labelled neighbours that vote.
-    #[arg(short, long, default_value_t = 10)]
-    k: usize,
-    /// Abstain when the leading label has a smaller share of the vote.
-    #[arg(long, default_value_t = 0.6)]
-    min_confidence: f32,
+#[derive(Clone, Copy, Debug, clap::ValueEnum)]
+pub enum MethodArg {
+    /// Logistic regression trained on the collection's labels, its confidence
+    /// calibrated on held-out folds.
+    Classifier,
+    /// A similarity-weighted vote of the k labelled nearest neighbours.
+    NeighbourVote,
 }
 
-impl VoteArgs {
-    fn options(&self, min_disagreement: f32) -> LabelOptions {
+#[derive(Args, Debug)]
+pub struct LabelArgs {
+    /// How labels are judged.
+    #[arg(long, value_enum, default_value_t = MethodArg::Classifier)]
+    method: MethodArg,
+    /// Neighbour vote: labelled neighbours that vote.
+    #[arg(short, long, default_value_t = LabelOptions::default().k)]
+    k: usize,
+    /// No suggestion below this confidence (classifier: calibrated
+    /// probability of being right; neighbour vote: share of the vote).
+    #[arg(long, default_value_t = LabelOptions::default().min_confidence)]
+    min_confidence: f32,
+    /// Seed of the classifier's folds.
+    #[arg(long, default_value_t = LabelOptions::default().seed)]
+    seed: u64,
+}
+
+impl LabelArgs {
+    fn options(&self, coverage: Option<f64>, min_disagreement: f32) -> LabelOptions {
         LabelOptions {
+            method: match self.method {
+                MethodArg::Classifier => LabelMethod::Classifier,
+                MethodArg::NeighbourVote => LabelMethod::NeighbourVote,
+            },
             k: self.k,
             min_confidence: self.min_confidence,
+            coverage,
             min_disagreement,
+            seed: self.seed,
         }
     }
 }
@@ -435,23 +463,27 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
                 &output,
             )?;
         }
-        Command::Labels(LabelCommand::Suggest { vote, output }) => {
+        Command::Labels(LabelCommand::Suggest {
+            judge,
+            coverage,
+            output,
+        }) => {
             let store = ctx.open_store()?;
             let catalog = Catalog::load(&store)?;
-            let options = vote.options(LabelOptions::default().min_disagreement);
+            let options = judge.options(coverage, LabelOptions::default().min_disagreement);
             emit(
                 &SuggestionTable(suggest_labels(&store, &catalog, &options)?),
                 &output,
             )?;
         }
         Command::Labels(LabelCommand::Suspects {
-            vote,
+            judge,
             min_disagreement,
             output,
         }) => {
             let store = ctx.open_store()?;
             let catalog = Catalog::load(&store)?;
-            let options = vote.options(min_disagreement);
+            let options = judge.options(None, min_disagreement);
             emit(
                 &SuspectTable(find_label_suspects(&store, &catalog, &options)?),
                 &output,
@@ -612,8 +644,8 @@ struct ErrorLine {
 
 impl Report for StatusReport {
     type Item = ErrorLine;
-    fn document(&self) -> serde_json::Value {
-        serde_json::to_value(self).unwrap_or_default()
+    fn document(&self) -> Result<serde_json::Value> {
+        Ok(serde_json::to_value(self)?)
     }
     fn items(&self) -> Vec<&ErrorLine> {
         self.error_list.iter().collect()
@@ -724,8 +756,8 @@ struct NeighbourTable(Vec<Neighbour>);
 
 impl Report for NeighbourTable {
     type Item = Neighbour;
-    fn document(&self) -> serde_json::Value {
-        serde_json::to_value(&self.0).unwrap_or_default()
+    fn document(&self) -> Result<serde_json::Value> {
+        Ok(serde_json::to_value(&self.0)?)
     }
     fn items(&self) -> Vec<&Neighbour> {
         self.0.iter().collect()
@@ -792,8 +824,8 @@ struct DuplicateTable(DuplicateReport);
 
 impl Report for DuplicateTable {
     type Item = DuplicateGroup;
-    fn document(&self) -> serde_json::Value {
-        serde_json::to_value(&self.0).unwrap_or_default()
+    fn document(&self) -> Result<serde_json::Value> {
+        Ok(serde_json::to_value(&self.0)?)
     }
     fn items(&self) -> Vec<&DuplicateGroup> {
         self.0.groups.iter().collect()
@@ -862,8 +894,8 @@ struct LeakTable(LeakReport);
 
 impl Report for LeakTable {
     type Item = vitrine_engine::duplicates::Leak;
-    fn document(&self) -> serde_json::Value {
-        serde_json::to_value(&self.0).unwrap_or_default()
+    fn document(&self) -> Result<serde_json::Value> {
+        Ok(serde_json::to_value(&self.0)?)
     }
     fn items(&self) -> Vec<&Self::Item> {
         self.0.leaks.iter().collect()
@@ -907,8 +939,8 @@ struct ClusterTable(ClusterReport);
 
 impl Report for ClusterTable {
     type Item = vitrine_engine::clusters::ClusterSummary;
-    fn document(&self) -> serde_json::Value {
-        serde_json::to_value(&self.0).unwrap_or_default()
+    fn document(&self) -> Result<serde_json::Value> {
+        Ok(serde_json::to_value(&self.0)?)
     }
     fn items(&self) -> Vec<&Self::Item> {
         self.0.clusters.iter().collect()
@@ -991,8 +1023,8 @@ struct CalibrationTable(CalibrationReport);
 
 impl Report for CalibrationTable {
     type Item = ThresholdPoint;
-    fn document(&self) -> serde_json::Value {
-        serde_json::to_value(&self.0).unwrap_or_default()
+    fn document(&self) -> Result<serde_json::Value> {
+        Ok(serde_json::to_value(&self.0)?)
     }
     fn items(&self) -> Vec<&ThresholdPoint> {
         self.0.points.iter().collect()
@@ -1046,21 +1078,29 @@ impl Report for CalibrationTable {
     }
 }
 
-struct SuggestionTable(Vec<LabelSuggestion>);
+fn method_name(method: LabelMethod) -> &'static str {
+    match method {
+        LabelMethod::Classifier => "a logistic regression trained on the collection's labels",
+        LabelMethod::NeighbourVote => "a vote of labelled neighbours",
+    }
+}
+
+struct SuggestionTable(SuggestionReport);
 
 impl Report for SuggestionTable {
     type Item = LabelSuggestion;
-    fn document(&self) -> serde_json::Value {
-        serde_json::to_value(&self.0).unwrap_or_default()
+    fn document(&self) -> Result<serde_json::Value> {
+        Ok(serde_json::to_value(&self.0)?)
     }
     fn items(&self) -> Vec<&LabelSuggestion> {
-        self.0.iter().collect()
+        self.0.suggestions.iter().collect()
     }
     fn columns(&self) -> Vec<&'static str> {
         vec!["path", "suggested", "confidence", "leading"]
     }
     fn rows(&self) -> Vec<Vec<String>> {
         self.0
+            .suggestions
             .iter()
             .map(|s| {
                 vec![
@@ -1074,29 +1114,49 @@ impl Report for SuggestionTable {
             })
             .collect()
     }
+    fn preamble(&self) -> Vec<String> {
+        let report = &self.0;
+        let made = report.suggestions.iter().filter(|s| !s.abstained).count();
+        let mut lines = vec![format!(
+            "{made} of {} unlabelled images get a suggestion from {}, at confidence {:.3} or more",
+            report.suggestions.len(),
+            method_name(report.method),
+            report.cut
+        )];
+        if let Some(accuracy) = report.expected_accuracy {
+            lines.push(format!(
+                "expected accuracy at that cut: {:.1}% (labelled images judged by models that did not see them)",
+                100.0 * accuracy
+            ));
+        }
+        lines.extend(report.note.iter().map(|note| format!("note: {note}")));
+        lines.push(String::new());
+        lines
+    }
 }
 
-struct SuspectTable(Vec<LabelSuspect>);
+struct SuspectTable(SuspectReport);
 
 impl Report for SuspectTable {
     type Item = LabelSuspect;
-    fn document(&self) -> serde_json::Value {
-        serde_json::to_value(&self.0).unwrap_or_default()
+    fn document(&self) -> Result<serde_json::Value> {
+        Ok(serde_json::to_value(&self.0)?)
     }
     fn items(&self) -> Vec<&LabelSuspect> {
-        self.0.iter().collect()
+        self.0.suspects.iter().collect()
     }
     fn columns(&self) -> Vec<&'static str> {
         vec![
             "path",
             "label",
             "disagreement",
-            "neighbours say",
-            "confidence",
+            "points to",
+            "its probability",
         ]
     }
     fn rows(&self) -> Vec<Vec<String>> {
         self.0
+            .suspects
             .iter()
             .map(|s| {
                 vec![
@@ -1108,6 +1168,27 @@ impl Report for SuspectTable {
                 ]
             })
             .collect()
+    }
+    fn preamble(&self) -> Vec<String> {
+        let report = &self.0;
+        let counts: Vec<String> = report
+            .per_label
+            .iter()
+            .map(|c| format!("{} {} of {}", c.label, c.suspects, c.labelled))
+            .collect();
+        let mut lines = vec![
+            format!(
+                "{} suspects by {}; per label: {}",
+                report.suspects.len(),
+                method_name(report.method),
+                counts.join(", ")
+            ),
+            "a label with many suspects is more likely an ambiguous class than many mistakes"
+                .into(),
+        ];
+        lines.extend(report.note.iter().map(|note| format!("note: {note}")));
+        lines.push(String::new());
+        lines
     }
 }
 

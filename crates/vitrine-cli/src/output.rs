@@ -36,7 +36,7 @@ pub struct OutputArgs {
 pub trait Report {
     type Item: Serialize;
     /// The JSON document (usually the list of items, or an object around it).
-    fn document(&self) -> serde_json::Value;
+    fn document(&self) -> Result<serde_json::Value>;
     fn items(&self) -> Vec<&Self::Item>;
     fn columns(&self) -> Vec<&'static str>;
     fn rows(&self) -> Vec<Vec<String>>;
@@ -59,7 +59,7 @@ pub fn emit<R: Report>(report: &R, args: &OutputArgs) -> Result<()> {
     let mut out = open_sink(args)?;
     match args.format {
         Format::Json => {
-            serde_json::to_writer_pretty(&mut out, &report.document())?;
+            serde_json::to_writer_pretty(&mut out, &report.document()?)?;
             writeln!(out)?;
         }
         Format::Jsonl => {

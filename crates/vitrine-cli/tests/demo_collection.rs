@@ -265,8 +265,9 @@ fn finds_every_planted_case() {
 
     // Unlabelled images: suggestions agree with the rendered class when the
     // vote does not abstain.
-    let suggestions = run(store, &["labels", "suggest"]);
-    let suggestions = suggestions.as_array().unwrap();
+    let report = run(store, &["labels", "suggest"]);
+    assert_eq!(report["method"], "classifier");
+    let suggestions = report["suggestions"].as_array().unwrap();
     let mut agreed = 0;
     for item in truth["unlabelled"].as_array().unwrap() {
         let path = item["path"].as_str().unwrap();

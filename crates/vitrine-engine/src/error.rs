@@ -109,7 +109,10 @@ mod tests {
             source: missing(),
         };
         for err in [&in_message as &dyn std::error::Error, &as_source] {
-            assert_eq!(describe(err), "cannot read a.jpg: No such file or directory");
+            assert_eq!(
+                describe(err),
+                "cannot read a.jpg: No such file or directory"
+            );
         }
     }
 }

@@ -23,7 +23,7 @@ use utoipa::ToSchema;
 use vitrine_engine::catalog::{dot, Catalog};
 use vitrine_engine::clusters::ClusterReport;
 use vitrine_engine::duplicates::{DuplicateReport, LeakReport};
-use vitrine_engine::labels::{LabelSuggestion, LabelSuspect};
+use vitrine_engine::labels::{LabelOptions, SuggestionReport, SuspectReport};
 use vitrine_engine::neighbours::{
     check_k, nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter,
 };
@@ -143,10 +143,10 @@ pub struct Collection {
     precomputed: AtomicU8,
     /// Clusterings by (requested number of clusters, seed).
     pub clusters: Memo<(Option<usize>, u64), ClusterReport>,
-    /// Label suggestions by (k, min_confidence bits).
-    pub label_suggestions: Memo<(usize, u32), Vec<LabelSuggestion>>,
-    /// Label suspects by (k, min_confidence bits, min_disagreement bits).
-    pub label_suspects: Memo<(usize, u32, u32), Vec<LabelSuspect>>,
+    /// Label suggestions by their options.
+    pub label_suggestions: Memo<LabelOptions, SuggestionReport>,
+    /// Label suspects by their options.
+    pub label_suspects: Memo<LabelOptions, SuspectReport>,
 }
 
 impl Collection {

@@ -158,12 +158,25 @@ fn every_endpoint_over_http() -> Result<()> {
         assert_eq!(members["total"], first["size"]);
         assert_eq!(members["items"].as_array().map(Vec::len) as Option<usize>, first["size"].as_u64().map(|s| s as usize));
 
-        // Labels: the two unsorted images get a vote; suspects answer a page.
-        let suggestions = get(&api("/labels/suggestions?k=5&min_confidence=0.5")).await?.json();
+        // Labels: the two unsorted images get a judgement by either method,
+        // the classifier's with its expected accuracy; suspects come with
+        // counts for each of the three labels.
+        let suggestions = get(&api("/labels/suggestions?min_confidence=0.5")).await?.json();
         assert_eq!(suggestions["total"], 2);
+        assert_eq!(suggestions["method"], "classifier");
+        assert_eq!(suggestions["cut"], 0.5);
+        let voted = get(&api("/labels/suggestions?method=neighbour_vote&k=5")).await?.json();
+        assert_eq!(voted["total"], 2);
+        assert_eq!(voted["method"], "neighbour_vote");
+        assert!(voted["expected_accuracy"].is_null());
         let suspects = get(&api("/labels/suspects")).await?;
         assert_eq!(suspects.status, 200);
         assert!(suspects.json()["items"].is_array());
+        let per_label = suspects.json()["per_label"].clone();
+        assert_eq!(per_label.as_array().map(Vec::len), Some(LABELS.len()), "{per_label}");
+        for count in per_label.as_array().into_iter().flatten() {
+            assert_eq!(count["labelled"], if count["label"] == "kettle" { 7 } else { 6 }, "{count}");
+        }
 
         // Writes: rescan (nothing changed), then an upload, then reclustering.
         let bearer = ("Authorization", format!("Bearer {TOKEN}"));

@@ -11,12 +11,26 @@
 //!   choice of the number of clusters, and per-cluster medoid and cohesion.
 //! - [`label_vote`]: similarity-weighted k-nearest-neighbour label votes and the reverse view,
 //!   how strongly an item's neighbours disagree with its own label.
+//! - [`logistic`]: regularised multinomial logistic regression (scikit-learn's objective,
+//!   our L-BFGS).
+//! - [`cross_validation`]: seeded stratified folds and out-of-fold logits.
+//! - [`calibration`]: reliability tables, accuracy above a confidence cut, isotonic
+//!   recalibration.
 
+pub mod calibration;
+pub mod cross_validation;
 pub mod grouping;
 pub mod kmeans;
 pub mod label_vote;
+mod lbfgs;
+pub mod logistic;
 mod similarity;
 
+pub use calibration::{
+    expected_calibration_error, reliability_table, top_class_outcomes, AccuracyCurve,
+    ConfidenceOutcome, CoverageAccuracy, IsotonicCalibration, ReliabilityBin,
+};
+pub use cross_validation::{out_of_fold_logits, stratified_folds, FoldFit, OutOfFoldLogits};
 pub use grouping::{group_by_similarity, SimilarityEdge};
 pub use kmeans::{
     automatic_n_clusters, kmeans, summarise_cluster, summarise_clusters, ClusterSummary,
@@ -24,6 +38,10 @@ pub use kmeans::{
 };
 pub use label_vote::{
     label_disagreement, neighbour_weight, vote_label, LabelDisagreement, LabelVote, VotingNeighbour,
+};
+pub use logistic::{
+    fit_logistic_regression, softmax_rows, LogisticFit, LogisticModel, LogisticRegressionOptions,
+    Termination,
 };
 
 /// Errors raised by the analytics algorithms; each names the offending argument.
@@ -69,6 +87,23 @@ pub enum AnalyticsError {
         index: usize,
         n_items: usize,
     },
+    #[error("{what}: holds {found} entries for {expected} rows")]
+    LengthMismatch {
+        what: &'static str,
+        found: usize,
+        expected: usize,
+    },
+    #[error("{what}: row {row} holds {value}, which must be below {limit}")]
+    ValueOutOfRange {
+        what: &'static str,
+        row: usize,
+        value: usize,
+        limit: usize,
+    },
+    #[error("class {class} has no labelled item")]
+    ClassWithoutItems { class: usize },
+    #[error("class {class} has no labelled item outside fold {fold}, so that fold's model cannot learn it")]
+    ClassMissingFromTraining { class: usize, fold: usize },
 }
 
 /// Checks that `vectors` is a whole number of finite rows of length `dim`; returns the row count.

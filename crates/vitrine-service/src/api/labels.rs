@@ -1,11 +1,13 @@
-//! Label suggestions for unlabelled images and likely mislabelled images,
-//! from similarity-weighted votes of labelled neighbours.
+//! Label suggestions for unlabelled images and likely mislabelled images:
+//! from a classifier trained on the collection's labels (default) or from
+//! votes of labelled neighbours.
 
 use actix_web::{get, web, HttpResponse};
 use serde::{Deserialize, Serialize};
 use utoipa::{IntoParams, ToSchema};
 use vitrine_engine::labels::{
-    find_label_suspects, suggest_labels, LabelOptions, LabelSuggestion, LabelSuspect,
+    find_label_suspects, suggest_labels, LabelMethod, LabelOptions, LabelSuggestion, LabelSuspect,
+    LabelSuspectCount,
 };
 
 use super::{blocking, checked_k, PageWindow, State};
@@ -13,14 +15,50 @@ use crate::error::{ApiError, ErrorBody};
 use crate::settings::ServeSettings;
 use crate::state::BUSY_WAIT;
 
+/// How labels are judged.
+#[derive(Clone, Copy, Debug, Deserialize, Serialize, ToSchema)]
+#[serde(rename_all = "snake_case")]
+pub enum Method {
+    /// Logistic regression trained on the collection's labels, its
+    /// confidence calibrated on held-out folds (default).
+    Classifier,
+    /// A similarity-weighted vote of the `k` labelled nearest neighbours.
+    NeighbourVote,
+}
+
+impl From<Method> for LabelMethod {
+    fn from(method: Method) -> Self {
+        match method {
+            Method::Classifier => LabelMethod::Classifier,
+            Method::NeighbourVote => LabelMethod::NeighbourVote,
+        }
+    }
+}
+
+impl From<LabelMethod> for Method {
+    fn from(method: LabelMethod) -> Self {
+        match method {
+            LabelMethod::Classifier => Method::Classifier,
+            LabelMethod::NeighbourVote => Method::NeighbourVote,
+        }
+    }
+}
+
 #[derive(Debug, Deserialize, IntoParams)]
 #[into_params(parameter_in = Query)]
 pub struct LabelParams {
-    /// Labelled neighbours that vote (default 10).
+    /// `classifier` (default) or `neighbour_vote`.
+    pub method: Option<Method>,
+    /// Neighbour vote: labelled neighbours that vote (default 10).
     pub k: Option<usize>,
-    /// Below this share of the vote no label is suggested (default 0.6).
+    /// Below this confidence no label is suggested (default 0.8; classifier:
+    /// calibrated probability of being right, neighbour vote: share of the vote).
     pub min_confidence: Option<f32>,
-    /// Suspects only: the least share of the vote against the image's own label (default 0.7).
+    /// Instead of `min_confidence`: suggest for this share of the unlabelled
+    /// images, the most certain ones (in (0, 1]).
+    pub coverage: Option<f64>,
+    /// Neighbour-vote suspects only: the least share of the vote against the
+    /// image's own label (default 0.7).
     pub min_disagreement: Option<f32>,
     pub page: Option<usize>,
     pub per_page: Option<usize>,
@@ -42,17 +80,20 @@ impl LabelParams {
     fn options(&self, settings: &ServeSettings) -> Result<LabelOptions, ApiError> {
         let defaults = LabelOptions::default();
         Ok(LabelOptions {
+            method: self.method.map_or(defaults.method, LabelMethod::from),
             k: checked_k(Some(self.k.unwrap_or(defaults.k)), settings)?,
             min_confidence: share(
                 "min_confidence",
                 self.min_confidence,
                 defaults.min_confidence,
             )?,
+            coverage: self.coverage,
             min_disagreement: share(
                 "min_disagreement",
                 self.min_disagreement,
                 defaults.min_disagreement,
             )?,
+            seed: defaults.seed,
         })
     }
 }
@@ -90,13 +131,23 @@ impl From<&LabelSuggestion> for SuggestionBody {
 
 #[derive(Debug, Serialize, ToSchema)]
 pub struct SuggestionsPage {
+    pub method: Method,
+    /// Labels are suggested from this confidence up.
+    pub cut: f32,
+    /// Classifier: the share of labelled images, each judged by a model that
+    /// did not see it, whose leading label was right among those at or above
+    /// the cut.
+    pub expected_accuracy: Option<f64>,
+    /// Labels left out of the classifier, and why.
+    pub note: Option<String>,
+    /// Most certain first.
     pub items: Vec<SuggestionBody>,
     pub total: usize,
     pub page: usize,
     pub per_page: usize,
 }
 
-/// A label for every unlabelled image, from its labelled neighbours.
+/// A label for every unlabelled image, most certain first.
 #[utoipa::path(
     operation_id = "label_suggestions",
     tag = "labels",
@@ -117,19 +168,23 @@ pub async fn suggestions(
     let collection = state.collection(&path)?;
     let options = query.options(&state.settings)?;
     let window = PageWindow::new(query.page, query.per_page, &state.settings)?;
-    let key = (options.k, options.min_confidence.to_bits());
-    let all = blocking(move || {
+    let report = blocking(move || {
         collection.with_store(BUSY_WAIT, |store, snapshot| {
             collection
                 .label_suggestions
-                .get_or_try(snapshot.generation, key, || {
+                .get_or_try(snapshot.generation, options.clone(), || {
                     suggest_labels(store, &snapshot.catalog, &options)
                 })
                 .map_err(ApiError::from)
         })
     })
     .await?;
+    let all = &report.suggestions;
     Ok(HttpResponse::Ok().json(SuggestionsPage {
+        method: report.method.into(),
+        cut: report.cut,
+        expected_accuracy: report.expected_accuracy,
+        note: report.note.clone(),
         items: all[window.range(all.len())]
             .iter()
             .map(SuggestionBody::from)
@@ -147,10 +202,13 @@ pub struct SuspectBody {
     pub root: String,
     pub split: Option<String>,
     pub label: Option<String>,
-    /// Share of the neighbours' vote against the image's own label.
+    /// How strongly the rest of the collection disagrees with the image's
+    /// own label: 1 minus that label's probability (classifier) or share of
+    /// the vote (neighbour vote).
     pub disagreement: f32,
-    /// What the neighbours say instead, when confident.
+    /// The label the rest of the collection points to.
     pub suggested_label: Option<String>,
+    /// That label's probability or share of the vote.
     pub confidence: f32,
 }
 
@@ -169,8 +227,32 @@ impl From<&LabelSuspect> for SuspectBody {
     }
 }
 
+/// Suspects of one label: many read as an ambiguous class rather than as
+/// many mistakes.
+#[derive(Debug, Serialize, ToSchema)]
+pub struct LabelSuspectCountBody {
+    pub label: String,
+    /// Images carrying the label.
+    pub labelled: usize,
+    pub suspects: usize,
+}
+
+impl From<&LabelSuspectCount> for LabelSuspectCountBody {
+    fn from(count: &LabelSuspectCount) -> Self {
+        Self {
+            label: count.label.clone(),
+            labelled: count.labelled,
+            suspects: count.suspects,
+        }
+    }
+}
+
 #[derive(Debug, Serialize, ToSchema)]
 pub struct SuspectsPage {
+    pub method: Method,
+    pub per_label: Vec<LabelSuspectCountBody>,
+    /// Labels left out of the classifier, and why.
+    pub note: Option<String>,
     /// Most doubtful first.
     pub items: Vec<SuspectBody>,
     pub total: usize,
@@ -178,7 +260,7 @@ pub struct SuspectsPage {
     pub per_page: usize,
 }
 
-/// Labelled images whose neighbours strongly disagree with their label.
+/// Labelled images that the rest of the collection contradicts, most doubtful first.
 #[utoipa::path(
     operation_id = "label_suspects",
     tag = "labels",
@@ -199,23 +281,26 @@ pub async fn suspects(
     let collection = state.collection(&path)?;
     let options = query.options(&state.settings)?;
     let window = PageWindow::new(query.page, query.per_page, &state.settings)?;
-    let key = (
-        options.k,
-        options.min_confidence.to_bits(),
-        options.min_disagreement.to_bits(),
-    );
-    let all = blocking(move || {
+    let report = blocking(move || {
         collection.with_store(BUSY_WAIT, |store, snapshot| {
             collection
                 .label_suspects
-                .get_or_try(snapshot.generation, key, || {
+                .get_or_try(snapshot.generation, options.clone(), || {
                     find_label_suspects(store, &snapshot.catalog, &options)
                 })
                 .map_err(ApiError::from)
         })
     })
     .await?;
+    let all = &report.suspects;
     Ok(HttpResponse::Ok().json(SuspectsPage {
+        method: report.method.into(),
+        per_label: report
+            .per_label
+            .iter()
+            .map(LabelSuspectCountBody::from)
+            .collect(),
+        note: report.note.clone(),
         items: all[window.range(all.len())]
             .iter()
             .map(SuspectBody::from)
