@@ -949,8 +949,9 @@ impl Report for ClusterTable {
         vec![
             "cluster",
             "size",
+            "tightness",
             "cohesion",
-            "top labels",
+            "top labels (of labelled)",
             "splits",
             "medoid",
         ]
@@ -971,11 +972,17 @@ impl Report for ClusterTable {
                     .iter()
                     .map(|s| format!("{} {}", s.split, s.count))
                     .collect();
+                let labels = if c.labelled_members == 0 {
+                    "(no labels)".to_owned()
+                } else {
+                    format!("{} (of {})", labels.join(", "), c.labelled_members)
+                };
                 vec![
                     c.index.to_string(),
                     c.size.to_string(),
+                    score(c.tightness),
                     score(c.cohesion),
-                    labels.join(", "),
+                    labels,
                     splits.join(", "),
                     c.medoid.path.clone(),
                 ]
@@ -983,10 +990,16 @@ impl Report for ClusterTable {
             .collect()
     }
     fn preamble(&self) -> Vec<String> {
-        let mut lines = vec![format!(
-            "{} clusters (spherical k-means, seed {})",
-            self.0.n_clusters, self.0.seed
-        )];
+        let mut lines = vec![
+            format!(
+                "{} clusters (spherical k-means, seed {}; number {})",
+                self.0.n_clusters, self.0.seed, self.0.chosen_by
+            ),
+            format!(
+                "tightness: 0 as loose as the whole collection (cohesion {:.3}), 1 every member the same picture",
+                self.0.collection_cohesion
+            ),
+        ];
         lines.extend(self.0.note.iter().map(|note| format!("note: {note}")));
         lines.push(String::new());
         lines

@@ -5,9 +5,11 @@
 use std::collections::BTreeMap;
 
 use serde::Serialize;
-use vitrine_store::ImageId;
 
-use crate::analytics::kmeans::{automatic_n_clusters, kmeans, summarise_clusters, KMeansOptions};
+use crate::analytics::kmeans::{
+    automatic_n_clusters, kmeans, summarise_cluster, summarise_clusters, KMeansOptions,
+    AUTOMATIC_N_CLUSTERS_CAP,
+};
 use crate::catalog::{dot, Catalog, ImageRef};
 use crate::error::EngineError;
 
@@ -48,22 +50,45 @@ pub struct ClusterSummary {
     pub medoid: ImageRef,
     /// Mean cosine similarity of the members to the cluster's centroid.
     pub cohesion: f32,
-    /// Labels by decreasing share (unlabelled members are not counted).
+    /// How much tighter than the whole collection the cluster is:
+    /// `(cohesion - c) / (1 - c)`, with `c` the collection's own cohesion
+    /// (the mean cosine of every image to the collection's mean direction).
+    /// 0: as loose as the collection; 1: every member the same picture.
+    /// Embeddings of one model sit in a narrow cone, so raw cohesions of
+    /// distinct groups all look high; this spreads them out.
+    pub tightness: f32,
+    /// Members with a label: `top_labels` shares are of these.
+    pub labelled_members: usize,
+    /// Labels by decreasing share of the labelled members.
     pub top_labels: Vec<LabelShare>,
     pub split_mix: Vec<SplitCount>,
     /// Every member, most central first.
-    pub member_ids: Vec<ImageId>,
+    pub members: Vec<ImageRef>,
 }
 
 #[derive(Clone, Debug, Serialize)]
 pub struct ClusterReport {
     pub n_clusters: usize,
+    /// How the number of clusters was chosen.
+    pub chosen_by: String,
+    /// The collection's own cohesion, which `tightness` is measured against.
+    pub collection_cohesion: f32,
     /// Set when the number of clusters asked for could not be given.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub note: Option<String>,
     pub seed: u64,
     /// Largest first.
     pub clusters: Vec<ClusterSummary>,
+}
+
+/// `(cohesion - collection) / (1 - collection)`; 1 when the collection is
+/// itself one picture.
+fn relative_tightness(cohesion: f32, collection: f32) -> f32 {
+    if collection >= 1.0 {
+        1.0
+    } else {
+        (cohesion - collection) / (1.0 - collection)
+    }
 }
 
 fn counts_by<'a>(values: impl Iterator<Item = Option<&'a String>>) -> BTreeMap<String, usize> {
@@ -84,6 +109,8 @@ pub fn cluster_collection(
     if n_items == 0 {
         return Ok(ClusterReport {
             n_clusters: 0,
+            chosen_by: "the collection is empty".into(),
+            collection_cohesion: 0.0,
             note: None,
             seed: options.seed,
             clusters: Vec::new(),
@@ -104,6 +131,12 @@ pub fn cluster_collection(
         .map(|asked| {
             format!("{asked} clusters were asked for, but the collection has {n_items} images: {n_clusters} clusters")
         });
+    let chosen_by = match options.n_clusters {
+        Some(_) => "asked for".to_owned(),
+        None => format!(
+            "rule of thumb round(sqrt(n / 2)) for n = {n_items} images, at most {AUTOMATIC_N_CLUSTERS_CAP}"
+        ),
+    };
     let kmeans_options = KMeansOptions {
         seed: options.seed,
         ..KMeansOptions::new(n_clusters)
@@ -117,6 +150,10 @@ pub fn cluster_collection(
         n_clusters,
     )
     .map_err(invalid)?;
+    let everyone: Vec<usize> = (0..n_items).collect();
+    let collection_cohesion = summarise_cluster(&catalog.embeddings, catalog.dim, &everyone)
+        .map_err(invalid)?
+        .map_or(0.0, |summary| summary.cohesion);
     let mut members: Vec<Vec<usize>> = vec![Vec::new(); n_clusters];
     for (row, &cluster) in result.assignments.iter().enumerate() {
         members[cluster].push(row);
@@ -152,14 +189,18 @@ pub fn cluster_collection(
             size: rows.len(),
             medoid: catalog.image_ref(summary.medoid),
             cohesion: summary.cohesion,
+            tightness: relative_tightness(summary.cohesion, collection_cohesion),
+            labelled_members: labelled.len(),
             top_labels,
             split_mix,
-            member_ids: ordered.iter().map(|&row| catalog.ids[row]).collect(),
+            members: ordered.iter().map(|&row| catalog.image_ref(row)).collect(),
         });
     }
     clusters.sort_by(|a, b| b.size.cmp(&a.size).then(a.index.cmp(&b.index)));
     Ok(ClusterReport {
         n_clusters,
+        chosen_by,
+        collection_cohesion,
         note,
         seed: options.seed,
         clusters,

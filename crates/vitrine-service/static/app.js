@@ -1126,7 +1126,8 @@
         Array.isArray(preview) ? previewLinks(preview, medoid) : null),
       topLabels(pick(cluster, 'top_labels')),
       splitMix(pick(cluster, 'split_mix')),
-      h('p', { class: 'kv' }, `Cohesion ${formatScore(cluster.cohesion)} (mean similarity to the centre)`),
+      h('p', { class: 'kv' }, `Label shares of the ${cluster.labelled_members} labelled members`),
+      h('p', { class: 'kv' }, `Tightness ${formatScore(cluster.tightness)} (0: as loose as the whole collection, 1: one picture) · cohesion ${formatScore(cluster.cohesion)}`),
       h('a', { class: 'button', href: open, dataset: { open: String(index) } }, `Open cluster ${index}`));
     if (!Array.isArray(preview) && cluster.size > 1) watchForPreview(ctx, card, index, q, medoid);
     return card;
@@ -1154,6 +1155,7 @@
       const fact = (label, ...value) => h('div', { class: 'field' }, h('span', {}, label), h('div', {}, value));
       facts.replaceChildren(h('div', { class: 'toolbar cluster-facts' },
         typeof total === 'number' ? fact('Images', h('strong', {}, String(total))) : null,
+        summary.tightness !== undefined ? fact('Tightness', h('strong', {}, formatScore(summary.tightness))) : null,
         summary.cohesion !== undefined ? fact('Cohesion', h('strong', {}, formatScore(summary.cohesion))) : null,
         pick(summary, 'top_labels') ? fact('Top labels', topLabels(summary.top_labels)) : null,
         pick(summary, 'split_mix') ? fact('Split mix', splitMix(summary.split_mix)) : null));

@@ -77,7 +77,13 @@ pub struct ClusterBody {
     pub medoid: ImageBrief,
     /// Mean cosine similarity of the members to the centroid.
     pub cohesion: f32,
-    /// Labels by decreasing share (unlabelled members not counted).
+    /// How much tighter than the whole collection: `(cohesion - c) / (1 - c)`
+    /// with `c` the collection's cohesion; 0 as loose as the collection, 1
+    /// every member the same picture.
+    pub tightness: f32,
+    /// Members with a label: `top_labels` shares are of these.
+    pub labelled_members: usize,
+    /// Labels by decreasing share of the labelled members.
     pub top_labels: Vec<LabelShareBody>,
     pub split_mix: Vec<SplitCountBody>,
 }
@@ -89,6 +95,8 @@ impl From<&ClusterSummary> for ClusterBody {
             size: c.size,
             medoid: (&c.medoid).into(),
             cohesion: c.cohesion,
+            tightness: c.tightness,
+            labelled_members: c.labelled_members,
             top_labels: c
                 .top_labels
                 .iter()
@@ -113,6 +121,10 @@ impl From<&ClusterSummary> for ClusterBody {
 #[derive(Debug, Serialize, ToSchema)]
 pub struct ClustersBody {
     pub n_clusters: usize,
+    /// How the number of clusters was chosen.
+    pub chosen_by: String,
+    /// The collection's own cohesion, which `tightness` is measured against.
+    pub collection_cohesion: f32,
     /// Set when the number of clusters asked for could not be given.
     pub note: Option<String>,
     pub seed: u64,
@@ -143,6 +155,8 @@ pub async fn summaries(
         blocking(move || clustering(&collection, &collection.snapshot(), &options)).await?;
     Ok(HttpResponse::Ok().json(ClustersBody {
         n_clusters: report.n_clusters,
+        chosen_by: report.chosen_by.clone(),
+        collection_cohesion: report.collection_cohesion,
         note: report.note.clone(),
         seed: report.seed,
         clusters: report.clusters.iter().map(ClusterBody::from).collect(),
@@ -199,8 +213,7 @@ pub async fn members(
     .options(&state.settings)?;
     let window = PageWindow::new(query.page, query.per_page, &state.settings)?;
     let snapshot = collection.snapshot();
-    let clustered = snapshot.clone();
-    let report = blocking(move || clustering(&collection, &clustered, &options)).await?;
+    let report = blocking(move || clustering(&collection, &snapshot, &options)).await?;
     let cluster = report
         .clusters
         .iter()
@@ -211,16 +224,14 @@ pub async fn members(
                 format!("the clustering has no cluster {index}"),
             )
         })?;
-    let catalog = &snapshot.catalog;
-    let items = cluster.member_ids[window.range(cluster.member_ids.len())]
+    let items = cluster.members[window.range(cluster.members.len())]
         .iter()
-        .filter_map(|&id| catalog.row(id))
-        .map(|row| ImageBrief::from(&catalog.image_ref(row)))
+        .map(ImageBrief::from)
         .collect();
     Ok(HttpResponse::Ok().json(ClusterMembersPage {
         index,
         items,
-        total: cluster.member_ids.len(),
+        total: cluster.members.len(),
         page: window.page,
         per_page: window.per_page,
     }))
