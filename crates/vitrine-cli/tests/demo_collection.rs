@@ -60,6 +60,12 @@ fn one_at_a_time() -> MutexGuard<'static, ()> {
     TURN.lock().unwrap_or_else(|poisoned| poisoned.into_inner())
 }
 
+/// What the demo generator planted (written by the generator, not by vitrine).
+fn ground_truth() -> Value {
+    let text = std::fs::read_to_string(repo().join("demo-images/ground-truth.json")).unwrap();
+    serde_json::from_str(&text).unwrap()
+}
+
 /// The demo collection indexed once per test binary, by the binary.
 fn demo_store() -> &'static Path {
     static STORE: OnceLock<tempfile::TempDir> = OnceLock::new();
@@ -103,10 +109,7 @@ fn finds_every_planted_case() {
         return;
     }
     let _turn = one_at_a_time();
-    let truth: Value = serde_json::from_str(
-        &std::fs::read_to_string(repo().join("demo-images/ground-truth.json")).unwrap(),
-    )
-    .unwrap();
+    let truth = ground_truth();
     let store = demo_store();
 
     ann_recall_on_real_embeddings(store);
@@ -325,10 +328,7 @@ fn typos_are_errors_that_list_what_is_known() {
         return;
     }
     let _turn = one_at_a_time();
-    let truth: Value = serde_json::from_str(
-        &std::fs::read_to_string(repo().join("demo-images/ground-truth.json")).unwrap(),
-    )
-    .unwrap();
+    let truth = ground_truth();
     let some_image = truth["near_duplicates"][0]["original"].as_str().unwrap();
     let cases: [(&[&str], &[&str]); 8] = [
         (

@@ -50,7 +50,7 @@ fn concurrent_queries_succeed_while_an_index_job_runs() -> Result<()> {
                 if n >= REQUESTS {
                     break;
                 }
-                let answer = if n % UPLOAD_EVERY == 0 {
+                let answer = if n.is_multiple_of(UPLOAD_EVERY) {
                     send(client.post(api("/search?k=5")), Body::Raw("image/png".into(), query_png.clone())).await
                 } else {
                     let id = fixture.ids[n % fixture.ids.len()];

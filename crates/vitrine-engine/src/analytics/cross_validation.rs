@@ -10,7 +10,8 @@ use rand::SeedableRng;
 use rand_chacha::ChaCha8Rng;
 
 use super::logistic::{
-    check_labels, check_options, class_counts, fit_rows, LogisticRegressionOptions, Termination,
+    check_labels, check_options, class_counts, fit_rows, LogisticModel, LogisticRegressionOptions,
+    Termination,
 };
 use super::{count_rows, AnalyticsError};
 
@@ -72,6 +73,9 @@ pub struct OutOfFoldLogits {
     pub logits: Vec<f32>,
     /// One entry per fold that holds items, in fold order.
     pub fits: Vec<FoldFit>,
+    /// The fold models, in the order of `fits`: averaged, they judge new
+    /// items as confidently as the out-of-fold logits judged the known ones.
+    pub models: Vec<LogisticModel>,
 }
 
 /// Logistic-regression logits of every item from the model fitted on the other folds.
@@ -126,6 +130,7 @@ pub fn out_of_fold_logits(
 
     let mut logits = vec![0f32; n_rows * n_classes];
     let mut fits = Vec::new();
+    let mut models = Vec::new();
     for (fold, held_out) in held_out_by_fold.iter().enumerate() {
         if held_out.is_empty() {
             continue;
@@ -143,6 +148,11 @@ pub fn out_of_fold_logits(
             termination: fit.termination,
             max_abs_gradient: fit.max_abs_gradient,
         });
+        models.push(fit.model);
     }
-    Ok(OutOfFoldLogits { logits, fits })
+    Ok(OutOfFoldLogits {
+        logits,
+        fits,
+        models,
+    })
 }
