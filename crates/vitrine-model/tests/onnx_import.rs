@@ -316,6 +316,10 @@ fn real_dinov2_s14_export_matches_the_onnx_package() -> Result<()> {
     } else {
         let fetched = default_model_root().join(DEFAULT_WHEEL.id);
         if !fetched.join(WEIGHTS_FILE).is_file() {
+            assert!(
+                std::env::var_os("CI").is_none(),
+                "CI must provide VITRINE_TEST_ONNX or the fetched default model"
+            );
             eprintln!(
                 "skipping: no DINOv2 ONNX export (set VITRINE_TEST_ONNX) and no fetched model at {}",
                 fetched.display()

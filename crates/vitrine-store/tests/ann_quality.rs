@@ -58,7 +58,7 @@ fn reloaded_index_recall_at_10_against_exact_search() -> anyhow::Result<()> {
     let truth = exact_top_k(&data, &queries, DIM, K);
     let recall = recall_at_k(&found, &truth, K);
     eprintln!("recall@{K} = {recall:.4}");
-    // Target from the task: recall@10 >= 0.98 at default search settings.
+    // The project's target: recall@10 >= 0.98 at default search settings.
     assert!(recall >= 0.98, "recall@10 = {recall:.4}");
     Ok(())
 }
