@@ -1,8 +1,11 @@
 //! The `vitrine` command line: parses arguments, calls the engine, prints.
 
+mod args;
 mod commands;
 mod output;
 mod progress;
+mod reports;
+mod session;
 mod settings;
 
 use std::io;
@@ -10,7 +13,7 @@ use std::process::ExitCode;
 
 use clap::Parser;
 
-use crate::commands::Cli;
+use crate::args::Cli;
 
 // The forward pass allocates and frees tensors of megabytes many times per
 // image; the system allocator returns them to the kernel each time and pays
