@@ -289,17 +289,7 @@ impl Classifier {
                 }
             })
             .collect();
-        let cut = match options.coverage {
-            None => options.min_confidence,
-            Some(coverage) => cut_for_coverage(&suggestions, coverage),
-        };
-        for suggestion in &mut suggestions {
-            if suggestion.confidence >= cut {
-                suggestion.abstained = false;
-                suggestion.suggested_label = suggestion.leading_label.clone();
-            }
-        }
-        suggestions.sort_by(|a, b| b.confidence.total_cmp(&a.confidence));
+        let cut = apply_cut(&mut suggestions, options);
         Ok(SuggestionReport {
             method: LabelMethod::Classifier,
             cut,
@@ -450,6 +440,26 @@ fn top_class(probabilities: &[f32]) -> (usize, f32) {
     )
 }
 
+/// Suggests the leading label from the cut up (`min_confidence`, or the cut
+/// that `coverage` asks for) and abstains below it; most certain first.
+/// Returns the cut.
+fn apply_cut(suggestions: &mut [LabelSuggestion], options: &LabelOptions) -> f32 {
+    let cut = match options.coverage {
+        None => options.min_confidence,
+        Some(coverage) => cut_for_coverage(suggestions, coverage),
+    };
+    for suggestion in suggestions.iter_mut() {
+        suggestion.abstained = suggestion.confidence < cut;
+        suggestion.suggested_label = if suggestion.abstained {
+            None
+        } else {
+            suggestion.leading_label.clone()
+        };
+    }
+    suggestions.sort_by(|a, b| b.confidence.total_cmp(&a.confidence));
+    cut
+}
+
 /// The confidence of the last suggestion kept when the most certain
 /// `coverage` share of them are (ties kept too).
 fn cut_for_coverage(suggestions: &[LabelSuggestion], coverage: f64) -> f32 {
@@ -521,19 +531,7 @@ pub fn suggest_labels(
                 .filter(|&row| catalog.records[row].label.is_none())
                 .map(|row| suggest_label(store, catalog, catalog.ids[row], &by_vote))
                 .collect::<Result<Vec<_>, _>>()?;
-            let cut = match options.coverage {
-                None => options.min_confidence,
-                Some(coverage) => cut_for_coverage(&suggestions, coverage),
-            };
-            for suggestion in &mut suggestions {
-                suggestion.abstained = suggestion.confidence < cut;
-                suggestion.suggested_label = if suggestion.abstained {
-                    None
-                } else {
-                    suggestion.leading_label.clone()
-                };
-            }
-            suggestions.sort_by(|a, b| b.confidence.total_cmp(&a.confidence));
+            let cut = apply_cut(&mut suggestions, options);
             Ok(SuggestionReport {
                 method: LabelMethod::NeighbourVote,
                 cut,

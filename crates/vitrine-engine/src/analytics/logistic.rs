@@ -33,6 +33,7 @@ use rayon::prelude::*;
 
 pub use super::lbfgs::Termination;
 use super::lbfgs::{minimise, LbfgsSettings};
+use super::matmul::{multiply, Operand};
 use super::{count_rows, AnalyticsError};
 
 /// Rows per parallel task; partial gradients are summed per task, in task order.
@@ -361,33 +362,22 @@ impl TrainingSet<'_> {
                 row_residuals[label] -= 1.0;
                 add_assign(&mut sums.intercepts_gradient, row_residuals);
             }
-            // SAFETY: `residuals` is n_rows x n_classes row-major, read as its transpose
-            // (n_classes x n_rows) through the strides; the widened block is n_rows x dim
-            // row-major; the gradient is n_classes x dim row-major. Every index the kernel
-            // touches lies inside those buffers.
-            unsafe {
-                gemm::gemm(
-                    n_classes,
-                    dim,
-                    n_rows,
-                    sums.weights_gradient.as_mut_ptr(),
-                    1,
-                    dim as isize,
-                    true,
-                    residuals.as_ptr(),
-                    n_classes as isize,
-                    1,
-                    scorer.widened.as_ptr(),
-                    1,
-                    dim as isize,
-                    1.0,
-                    1.0,
-                    false,
-                    false,
-                    false,
-                    gemm::Parallelism::None,
-                );
-            }
+            multiply(
+                &mut sums.weights_gradient,
+                &Operand {
+                    data: residuals,
+                    rows: n_rows,
+                    cols: n_classes,
+                    transposed: true,
+                },
+                &Operand {
+                    data: &scorer.widened[..n_rows * dim],
+                    rows: n_rows,
+                    cols: dim,
+                    transposed: false,
+                },
+                true,
+            );
         }
         sums
     }
@@ -432,32 +422,23 @@ impl BlockScorer {
         for row_logits in logits.chunks_exact_mut(n_classes) {
             row_logits.copy_from_slice(intercepts);
         }
-        // SAFETY: the widened block is n_rows x dim row-major; `weights` is n_classes x dim
-        // row-major, read as its transpose (dim x n_classes) through the strides; `logits` is
-        // n_rows x n_classes row-major. Every index the kernel touches lies inside them.
-        unsafe {
-            gemm::gemm(
-                n_rows,
-                n_classes,
-                dim,
-                logits.as_mut_ptr(),
-                1,
-                n_classes as isize,
-                true,
-                self.widened.as_ptr(),
-                1,
-                dim as isize,
-                weights.as_ptr(),
-                dim as isize,
-                1,
-                1.0,
-                1.0,
-                false,
-                false,
-                false,
-                gemm::Parallelism::None,
-            );
-        }
+        // The intercepts are in place: the product adds to them.
+        multiply(
+            logits,
+            &Operand {
+                data: &self.widened[..n_rows * dim],
+                rows: n_rows,
+                cols: dim,
+                transposed: false,
+            },
+            &Operand {
+                data: weights,
+                rows: n_classes,
+                cols: dim,
+                transposed: true,
+            },
+            true,
+        );
         logits
     }
 }

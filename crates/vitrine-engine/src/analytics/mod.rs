@@ -24,6 +24,7 @@ pub mod kmeans;
 pub mod label_vote;
 mod lbfgs;
 pub mod logistic;
+mod matmul;
 mod similarity;
 
 pub use calibration::{

@@ -2,6 +2,8 @@
 
 use rayon::prelude::*;
 
+use super::matmul::{multiply, Operand};
+
 /// Rows per matrix-multiply block: bounds each worker's score buffer to
 /// `ROWS_PER_BLOCK * n_centres` floats while keeping blocks large enough for the kernel.
 const ROWS_PER_BLOCK: usize = 1024;
@@ -67,35 +69,22 @@ where
         .map(|(block_index, block)| {
             let n_rows = block.len() / dim;
             let mut scores = vec![0f32; n_rows * n_centres];
-            {
-                // SAFETY: `block` is n_rows x dim row-major, `centres` is n_centres x dim
-                // row-major (read as its transpose, dim x n_centres, via the strides) and
-                // `scores` is n_rows x n_centres row-major; every index the kernel touches is
-                // inside those three buffers.
-                unsafe {
-                    gemm::gemm(
-                        n_rows,
-                        n_centres,
-                        dim,
-                        scores.as_mut_ptr(),
-                        1,
-                        n_centres as isize,
-                        false,
-                        block.as_ptr(),
-                        1,
-                        dim as isize,
-                        centres.as_ptr(),
-                        dim as isize,
-                        1,
-                        0.0,
-                        1.0,
-                        false,
-                        false,
-                        false,
-                        gemm::Parallelism::None,
-                    );
-                }
-            }
+            multiply(
+                &mut scores,
+                &Operand {
+                    data: block,
+                    rows: n_rows,
+                    cols: dim,
+                    transposed: false,
+                },
+                &Operand {
+                    data: centres,
+                    rows: n_centres,
+                    cols: dim,
+                    transposed: true,
+                },
+                false,
+            );
             per_block(block_index * ROWS_PER_BLOCK, &scores)
         })
         .collect()
