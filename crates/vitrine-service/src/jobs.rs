@@ -218,10 +218,7 @@ impl Jobs {
         let thread_job = job.clone();
         let handle = std::thread::Builder::new()
             .name(format!("vitrine-job-{id}"))
-            .spawn(move || {
-                let pool = jobs.pool.clone();
-                pool.install(|| jobs.run(&thread_job, work))
-            })
+            .spawn(move || jobs.run(&thread_job, work))
             .map_err(|e| ApiError::internal(format!("cannot start a job thread: {e}")))?;
         let mut threads = self.threads.lock();
         threads.retain(|t| !t.is_finished());
@@ -264,8 +261,12 @@ impl Jobs {
             status.state = JobState::Running;
             status.started_unix_s = Some(now_unix_s());
         }
-        // A panicking job must not keep its slot for ever.
-        let outcome = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| work(job)))
+        // A panicking job must not keep its slot for ever. The work runs on the
+        // background pool only once it has its slot, so that no pool thread
+        // sits waiting for one.
+        let outcome = self
+            .pool
+            .install(|| std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| work(job))))
             .unwrap_or_else(|_| Err("the job failed unexpectedly; see the server log".into()));
         job.finish(outcome);
         *self.free_slots.lock() += 1;
