@@ -1,7 +1,6 @@
 //! The commands: each translates its arguments into engine calls and hands
 //! the result to a report.
 
-use std::collections::BTreeMap;
 use std::io::Write;
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
@@ -10,11 +9,12 @@ use anyhow::{bail, Context, Result};
 use serde::Serialize;
 use vitrine_engine::calibrate::{calibrate, CalibrationOptions};
 use vitrine_engine::catalog::Catalog;
-use vitrine_engine::clusters::{cluster_collection, ClusterOptions};
-use vitrine_engine::duplicates::{find_duplicates, find_leaks_verified, LeakOptions};
+use vitrine_engine::clusters::ClusterOptions;
+use vitrine_engine::duplicates::LeakOptions;
 use vitrine_engine::ingest::{fingerprint_of, index_roots, resolve_roots, IndexOptions};
-use vitrine_engine::labels::{find_label_suspects, suggest_labels, LabelOptions};
-use vitrine_engine::neighbours::{nearest_to_image, nearest_to_vector, NeighbourFilter};
+use vitrine_engine::labels::LabelOptions;
+use vitrine_engine::neighbours::NeighbourFilter;
+use vitrine_engine::questions::NeighbourQuery;
 use vitrine_engine::splits::SplitRule;
 use vitrine_engine::walk::WalkOptions;
 use vitrine_imaging::PreprocessSpec;
@@ -27,11 +27,12 @@ use crate::args::{
     Cli, Command, ImportArgs, IndexArgs, LabelCommand, ModelCommand, NormalisationArg, PoolingArg,
     ServeArgs, SimilarArgs, ThresholdArgs,
 };
+use crate::collection::{self, Answers};
 use crate::output::{emit, OutputArgs};
 use crate::progress::StderrProgress;
 use crate::reports::{
-    CalibrationTable, ClusterTable, DuplicateTable, ErrorLine, LeakTable, NeighbourTable,
-    StatusReport, SuggestionTable, SuspectTable,
+    CalibrationTable, ClusterTable, DuplicateTable, LeakTable, NeighbourTable, StatusTable,
+    SuggestionTable, SuspectTable,
 };
 use crate::session::{decode_options, embed_file, Session};
 use crate::settings::Settings;
@@ -58,11 +59,8 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
         Command::Status { errors, output } => status(&ctx, errors, &output)?,
         Command::Similar(args) => similar(&ctx, &args)?,
         Command::Duplicates { threshold, output } => {
-            let store = ctx.open_store()?;
-            let catalog = Catalog::load(&store)?;
             let options = ctx.duplicate_options(&threshold)?;
-            let verifier = ctx.verifier(&store, &options);
-            let report = find_duplicates(&store, &catalog, &options, verifier.as_ref())?;
+            let report = collection::open(&ctx)?.duplicates(&options)?;
             emit(&DuplicateTable(report), &output)?;
         }
         Command::Leaks {
@@ -71,55 +69,40 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
             threshold,
             output,
         } => {
-            let store = ctx.open_store()?;
-            let catalog = Catalog::load(&store)?;
             let options = LeakOptions {
                 evaluated_splits: splits,
                 reference_split: against
                     .unwrap_or_else(|| ctx.settings.queries.reference_split.clone()),
                 duplicates: ctx.duplicate_options(&threshold)?,
             };
-            let verifier = ctx.verifier(&store, &options.duplicates);
-            let report = find_leaks_verified(&store, &catalog, &options, verifier.as_ref())?;
+            let report = collection::open(&ctx)?.leaks(&options)?;
             emit(&LeakTable(report), &output)?;
         }
         Command::Clusters { k, seed, output } => {
-            let store = ctx.open_store()?;
-            let catalog = Catalog::load(&store)?;
             let options = ClusterOptions {
                 n_clusters: k,
                 seed,
             };
-            emit(
-                &ClusterTable(cluster_collection(&catalog, &options)?),
-                &output,
-            )?;
+            let report = collection::open(&ctx)?.clusters(&options)?;
+            emit(&ClusterTable(report), &output)?;
         }
         Command::Labels(LabelCommand::Suggest {
             judge,
             coverage,
             output,
         }) => {
-            let store = ctx.open_store()?;
-            let catalog = Catalog::load(&store)?;
             let options = judge.options(coverage, LabelOptions::default().min_disagreement);
-            emit(
-                &SuggestionTable(suggest_labels(&store, &catalog, &options)?),
-                &output,
-            )?;
+            let report = collection::open(&ctx)?.label_suggestions(&options)?;
+            emit(&SuggestionTable(report), &output)?;
         }
         Command::Labels(LabelCommand::Suspects {
             judge,
             min_disagreement,
             output,
         }) => {
-            let store = ctx.open_store()?;
-            let catalog = Catalog::load(&store)?;
             let options = judge.options(None, min_disagreement);
-            emit(
-                &SuspectTable(find_label_suspects(&store, &catalog, &options)?),
-                &output,
-            )?;
+            let report = collection::open(&ctx)?.label_suspects(&options)?;
+            emit(&SuspectTable(report), &output)?;
         }
         Command::Serve(args) => serve(&ctx, &args)?,
         Command::Calibrate {
@@ -193,7 +176,7 @@ fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
     // created means a refused run leaves no new, empty store behind.
     resolve_roots(&args.roots, &options)?;
     let mut store = Store::create_or_open(&ctx.global.store, &fingerprint_of(&encoder))
-        .with_context(|| format!("while opening collection {}", ctx.global.store.display()))?;
+        .map_err(|err| collection::opening_failed(&ctx.global.store, err))?;
     let started = std::time::Instant::now();
     let report = index_roots(
         &mut store,
@@ -227,86 +210,37 @@ fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
 }
 
 fn status(ctx: &Session, list_errors: bool, output: &OutputArgs) -> Result<()> {
-    let store = ctx.open_store()?;
-    let roots: BTreeMap<u32, PathBuf> = store.roots().into_iter().collect();
-    let mut images_per_root_id: BTreeMap<u32, usize> = roots.keys().map(|&id| (id, 0)).collect();
-    let mut splits = BTreeMap::new();
-    let mut labels = BTreeMap::new();
-    for entry in store.records() {
-        let (_, record) = entry?;
-        *images_per_root_id.entry(record.root).or_insert(0) += 1;
-        let split = record.split.unwrap_or_else(|| "(none)".into());
-        let label = record.label.unwrap_or_else(|| "(none)".into());
-        *labels.entry(format!("{split}/{label}")).or_insert(0) += 1;
-        *splits.entry(split).or_insert(0) += 1;
-    }
-    let errors = store.errors()?;
-    let fingerprint = store.fingerprint();
-    let report = StatusReport {
-        images: store.len(),
-        errors: errors.len(),
-        model: fingerprint.to_string(),
-        model_id: fingerprint.model_id.clone(),
-        dimension: fingerprint.dim,
-        pooling: fingerprint.pooling.clone(),
-        roots: roots.values().map(|p| p.display().to_string()).collect(),
-        images_per_root: roots
-            .iter()
-            .map(|(id, path)| (path.display().to_string(), images_per_root_id[id]))
-            .collect(),
-        splits,
-        labels,
-        index_disk_bytes: store.index_disk_bytes(),
-        error_list: if list_errors {
-            errors
-                .iter()
-                .map(|e| ErrorLine {
-                    root: roots
-                        .get(&e.root)
-                        .map(|p| p.display().to_string())
-                        .unwrap_or_default(),
-                    path: e.rel_path.clone(),
-                    reason: e.reason.clone(),
-                })
-                .collect()
-        } else {
-            Vec::new()
-        },
-    };
-    emit(&report, output)
+    let status = collection::open(ctx)?.status(list_errors)?;
+    emit(&StatusTable(status), output)
 }
 
 fn similar(ctx: &Session, args: &SimilarArgs) -> Result<()> {
-    let store = ctx.open_store()?;
-    let catalog = Catalog::load(&store)?;
     let filter = NeighbourFilter {
         split: args.split.clone(),
         label: args.label.clone(),
         path_prefix: args.prefix.clone(),
     };
-    let neighbours = if let Some(file) = &args.file {
-        let encoder = ctx.encoder()?;
-        if fingerprint_of(&encoder) != *store.fingerprint() {
-            bail!(
-                "the collection was made with {}, the loaded model is {}",
-                store.fingerprint(),
-                fingerprint_of(&encoder)
-            );
-        }
-        let query = embed_file(&encoder, &ctx.settings, file)?;
-        nearest_to_vector(&store, &catalog, &query, args.k, &filter, None)?
-    } else {
-        let id = match (&args.id, &args.path) {
-            (Some(id), _) => *id,
-            (None, Some(path)) => (0..catalog.len())
-                .find(|&row| catalog.records[row].rel_path == *path)
-                .map(|row| catalog.ids[row])
-                .with_context(|| format!("no indexed image has the path {path}"))?,
-            (None, None) => bail!("give one of --id, --path or --file"),
-        };
-        nearest_to_image(&store, &catalog, id, args.k, &filter)?
+    let collection = collection::open(ctx)?;
+    let of = match (&args.file, &args.id, &args.path) {
+        (Some(file), _, _) => NeighbourQuery::Vector(outside_query(ctx, &*collection, file)?),
+        (None, Some(id), _) => NeighbourQuery::Image(*id),
+        (None, None, Some(path)) => NeighbourQuery::Path(path.clone()),
+        (None, None, None) => bail!("give one of --id, --path or --file"),
     };
+    let neighbours = collection.neighbours(of, args.k, &filter)?;
     emit(&NeighbourTable(neighbours), &args.output)
+}
+
+/// The embedding of a file from outside the collection, made by the
+/// collection's own model.
+fn outside_query(ctx: &Session, collection: &dyn Answers, file: &Path) -> Result<Vec<f32>> {
+    let encoder = ctx.encoder()?;
+    let stored = collection.status(false)?.model;
+    let loaded = fingerprint_of(&encoder).to_string();
+    if stored != loaded {
+        bail!("the collection was made with {stored}, the loaded model is {loaded}");
+    }
+    embed_file(&encoder, &ctx.settings, file)
 }
 
 fn calibrate_thresholds(

@@ -1,6 +1,7 @@
 //! The `vitrine` command line: parses arguments, calls the engine, prints.
 
 mod args;
+mod collection;
 mod commands;
 mod output;
 mod progress;

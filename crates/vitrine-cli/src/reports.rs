@@ -1,10 +1,7 @@
 //! How each command's result is shown: one `Report` per result, for the
 //! table, JSON, JSON Lines and CSV formats of `output.rs`.
 
-use std::collections::BTreeMap;
-
 use anyhow::Result;
-use serde::Serialize;
 use vitrine_engine::calibrate::{CalibrationReport, ThresholdPoint};
 use vitrine_engine::clusters::ClusterReport;
 use vitrine_engine::duplicates::{DuplicateGroup, DuplicateReport, DuplicateTier, LeakReport};
@@ -12,53 +9,31 @@ use vitrine_engine::labels::{
     LabelMethod, LabelSuggestion, LabelSuspect, SuggestionReport, SuspectReport,
 };
 use vitrine_engine::neighbours::Neighbour;
+use vitrine_engine::status::{CollectionStatus, ErrorLine};
 
 use crate::output::{opt, score, Report};
 
-#[derive(Serialize)]
-pub struct StatusReport {
-    pub images: usize,
-    pub errors: usize,
-    pub model: String,
-    pub model_id: String,
-    pub dimension: usize,
-    pub pooling: String,
-    pub roots: Vec<String>,
-    /// Every root with its image count: a root stays recorded when it holds
-    /// none (its failed files are recorded against it, and a rescan revisits it).
-    pub images_per_root: BTreeMap<String, usize>,
-    pub splits: BTreeMap<String, usize>,
-    pub labels: BTreeMap<String, usize>,
-    pub index_disk_bytes: u64,
-    #[serde(skip_serializing_if = "Vec::is_empty")]
-    pub error_list: Vec<ErrorLine>,
-}
+pub struct StatusTable(pub CollectionStatus);
 
-#[derive(Serialize)]
-pub struct ErrorLine {
-    pub root: String,
-    pub path: String,
-    pub reason: String,
-}
-
-impl Report for StatusReport {
+impl Report for StatusTable {
     type Item = ErrorLine;
     fn document(&self) -> Result<serde_json::Value> {
-        Ok(serde_json::to_value(self)?)
+        Ok(serde_json::to_value(&self.0)?)
     }
     fn items(&self) -> Vec<&ErrorLine> {
-        self.error_list.iter().collect()
+        self.0.error_list.iter().collect()
     }
     fn columns(&self) -> Vec<&'static str> {
-        if self.error_list.is_empty() {
+        if self.0.error_list.is_empty() {
             vec!["split", "label", "images"]
         } else {
             vec!["root", "path", "reason"]
         }
     }
     fn rows(&self) -> Vec<Vec<String>> {
-        if self.error_list.is_empty() {
-            self.labels
+        if self.0.error_list.is_empty() {
+            self.0
+                .labels
                 .iter()
                 .map(|(key, n)| {
                     let (split, label) = key.split_once('/').unwrap_or((key, ""));
@@ -66,7 +41,8 @@ impl Report for StatusReport {
                 })
                 .collect()
         } else {
-            self.error_list
+            self.0
+                .error_list
                 .iter()
                 .map(|e| vec![e.root.clone(), e.path.clone(), e.reason.clone()])
                 .collect()
@@ -74,23 +50,28 @@ impl Report for StatusReport {
     }
     fn preamble(&self) -> Vec<String> {
         let mut lines = vec![
-            format!("collection: {} images, {} errors", self.images, self.errors),
-            format!("model: {}", self.model),
+            format!(
+                "collection: {} images, {} errors",
+                self.0.images, self.0.errors
+            ),
+            format!("model: {}", self.0.model),
             format!(
                 "index on disk: {:.1} MiB",
-                self.index_disk_bytes as f64 / (1 << 20) as f64
+                self.0.index_disk_bytes as f64 / (1 << 20) as f64
             ),
         ];
         lines.extend(
-            self.roots
+            self.0
+                .roots
                 .iter()
-                .map(|root| match self.images_per_root[root] {
+                .map(|root| match self.0.images_per_root[root] {
                     0 => format!("root: {root} (no images)"),
                     1 => format!("root: {root} (1 image)"),
                     n => format!("root: {root} ({n} images)"),
                 }),
         );
         let splits: Vec<String> = self
+            .0
             .splits
             .iter()
             .map(|(s, n)| format!("{s} {n}"))

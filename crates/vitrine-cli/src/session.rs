@@ -58,7 +58,7 @@ impl Session {
 
     pub fn open_store(&self) -> Result<Store> {
         Store::open(&self.global.store)
-            .with_context(|| format!("while opening collection {}", self.global.store.display()))
+            .map_err(|err| crate::collection::opening_failed(&self.global.store, err))
     }
 
     pub fn duplicate_options(&self, threshold: &ThresholdArgs) -> Result<DuplicateOptions> {

@@ -3,115 +3,15 @@
 //! fixture of the model crate) keeps forward passes cheap: these tests are
 //! about the store and the ingest pipeline, not embedding quality.
 
+mod common;
+
 use std::collections::BTreeMap;
-use std::path::{Path, PathBuf};
-use std::process::{Command, Output, Stdio};
+use std::path::Path;
+use std::process::{Command, Stdio};
 use std::time::Duration;
 
+use common::{write_image, Fixture};
 use image::{ImageBuffer, Rgb};
-use serde_json::Value;
-
-const BIN: &str = env!("CARGO_BIN_EXE_vitrine");
-
-struct Fixture {
-    dir: tempfile::TempDir,
-}
-
-impl Fixture {
-    fn new() -> Self {
-        let fixture = Fixture {
-            dir: tempfile::tempdir().unwrap(),
-        };
-        std::fs::write(fixture.dir.path().join("vitrine.toml"), "").unwrap();
-        let checkpoint = Path::new(env!("CARGO_MANIFEST_DIR"))
-            .join("../vitrine-model/tests/fixtures/families/dinov2");
-        let out = fixture.run(&[
-            "model",
-            "import",
-            checkpoint.to_str().unwrap(),
-            "--out",
-            fixture.model_dir().to_str().unwrap(),
-            "--id",
-            "tiny-dinov2",
-            "--crop",
-            "32",
-            "--resize",
-            "36",
-        ]);
-        assert!(
-            out.status.success(),
-            "{}",
-            String::from_utf8_lossy(&out.stderr)
-        );
-        fixture
-    }
-
-    fn model_dir(&self) -> PathBuf {
-        self.dir.path().join("model")
-    }
-
-    fn store(&self) -> PathBuf {
-        self.dir.path().join("store")
-    }
-
-    fn images(&self) -> PathBuf {
-        self.dir.path().join("images")
-    }
-
-    fn command(&self, args: &[&str]) -> Command {
-        let mut command = Command::new(BIN);
-        command
-            .arg("--store")
-            .arg(self.store())
-            .arg("--model")
-            .arg(self.model_dir())
-            .args(args)
-            .env("VITRINE_CONFIG", self.dir.path().join("vitrine.toml"));
-        command
-    }
-
-    fn run(&self, args: &[&str]) -> Output {
-        self.command(args).output().unwrap()
-    }
-
-    fn index(&self) -> String {
-        let out = self.run(&["index", self.images().to_str().unwrap()]);
-        assert!(
-            out.status.success(),
-            "{}",
-            String::from_utf8_lossy(&out.stderr)
-        );
-        String::from_utf8(out.stdout).unwrap()
-    }
-
-    fn status(&self) -> Value {
-        let out = self.run(&["status", "--errors", "--format", "json"]);
-        assert!(
-            out.status.success(),
-            "{}",
-            String::from_utf8_lossy(&out.stderr)
-        );
-        serde_json::from_slice(&out.stdout).unwrap()
-    }
-}
-
-/// A distinct picture for every seed: stripes, a disc and a colour ramp.
-fn write_image(path: &Path, seed: u32) {
-    std::fs::create_dir_all(path.parent().unwrap()).unwrap();
-    let (w, h) = (48 + seed % 17, 40 + seed % 13);
-    let image = ImageBuffer::from_fn(w, h, |x, y| {
-        let stripe = ((x * (1 + seed % 5) + y * (seed % 3)) / 4 % 2) as u8 * 90;
-        let dx = x as i32 - (seed % w) as i32;
-        let dy = y as i32 - (seed * 7 % h) as i32;
-        let disc = if dx * dx + dy * dy < 120 { 120 } else { 0 };
-        Rgb([
-            stripe.wrapping_add((seed * 37) as u8),
-            (disc as u8).wrapping_add((x * 3) as u8),
-            (y * 5) as u8 ^ (seed * 11) as u8,
-        ])
-    });
-    image.save(path).unwrap();
-}
 
 fn count(line: &str, what: &str) -> usize {
     let pattern = format!(" {what}");

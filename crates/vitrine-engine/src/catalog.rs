@@ -4,13 +4,13 @@
 use std::collections::{BTreeSet, HashMap};
 use std::path::PathBuf;
 
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 use vitrine_store::{ImageId, ImageRecord, Store};
 
 use crate::error::EngineError;
 
 /// How results name an image: its id and where it lives.
-#[derive(Clone, Debug, PartialEq, Serialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct ImageRef {
     pub id: ImageId,
     /// Relative to its root, `/`-separated.
@@ -59,6 +59,16 @@ impl Catalog {
 
     pub fn is_empty(&self) -> bool {
         self.ids.is_empty()
+    }
+
+    /// The id of the image at a root-relative path (the first root's when
+    /// several roots hold that path).
+    pub fn id_of_path(&self, path: &str) -> Result<ImageId, EngineError> {
+        self.records
+            .iter()
+            .position(|record| record.rel_path == path)
+            .map(|row| self.ids[row])
+            .ok_or_else(|| EngineError::UnknownPath(path.to_owned()))
     }
 
     pub fn row(&self, id: ImageId) -> Option<usize> {

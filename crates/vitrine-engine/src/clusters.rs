@@ -4,7 +4,7 @@
 
 use std::collections::BTreeMap;
 
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 
 use crate::analytics::kmeans::{
     automatic_n_clusters, kmeans, summarise_cluster, summarise_clusters, KMeansOptions,
@@ -13,7 +13,7 @@ use crate::analytics::kmeans::{
 use crate::catalog::{dot, Catalog, ImageRef};
 use crate::error::EngineError;
 
-#[derive(Clone, Debug)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct ClusterOptions {
     /// `None`: chosen by [`automatic_n_clusters`] (about sqrt(n/2), capped).
     pub n_clusters: Option<usize>,
@@ -29,20 +29,20 @@ impl Default for ClusterOptions {
     }
 }
 
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct LabelShare {
     pub label: String,
     pub count: usize,
     pub share: f64,
 }
 
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct SplitCount {
     pub split: String,
     pub count: usize,
 }
 
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct ClusterSummary {
     pub index: usize,
     pub size: usize,
@@ -66,7 +66,7 @@ pub struct ClusterSummary {
     pub members: Vec<ImageRef>,
 }
 
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct ClusterReport {
     pub n_clusters: usize,
     /// How the number of clusters was chosen.

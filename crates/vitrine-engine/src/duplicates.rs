@@ -16,7 +16,7 @@
 use std::collections::{BTreeMap, HashMap, HashSet};
 
 use rayon::prelude::*;
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 use vitrine_store::{ImageId, Store};
 
 use crate::analytics::grouping::{group_by_similarity, SimilarityEdge};
@@ -25,7 +25,7 @@ use crate::error::EngineError;
 use crate::verify::{PairCheck, PairVerifier, VerifiedFile};
 
 /// How strongly two images are the same picture.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum DuplicateTier {
     /// Byte-for-byte identical files.
@@ -37,7 +37,7 @@ pub enum DuplicateTier {
 }
 
 /// Parameters shared by duplicate and leakage queries.
-#[derive(Clone, Debug)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct DuplicateOptions {
     pub near_duplicate_threshold: f32,
     /// Neighbours examined per image when looking for near-duplicates.
@@ -79,7 +79,7 @@ pub const DEFAULT_CANDIDATE_THRESHOLD: f32 = 0.60;
 const EVIDENCE_PER_ROUND: usize = 512;
 
 /// How a near pair was judged.
-#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
 #[serde(tag = "status", rename_all = "snake_case")]
 pub enum Verification {
     /// The finer check confirmed it; `score` is its aligned pixel correlation.
@@ -99,7 +99,7 @@ impl Verification {
 }
 
 /// What verification did in one query.
-#[derive(Clone, Debug, Default, Serialize)]
+#[derive(Clone, Debug, Default, Serialize, Deserialize)]
 pub struct VerificationSummary {
     /// Whether near pairs went through the finer check.
     pub applied: bool,
@@ -117,14 +117,14 @@ pub struct VerificationSummary {
 }
 
 /// Duplicate groups and how their near pairs were judged.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct DuplicateReport {
     pub groups: Vec<DuplicateGroup>,
     pub verification: VerificationSummary,
 }
 
 /// One member of a duplicate group.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct GroupMember {
     #[serde(flatten)]
     pub image: ImageRef,
@@ -147,7 +147,7 @@ pub struct GroupMember {
 }
 
 /// A group of images that are copies of one picture.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct DuplicateGroup {
     /// The weakest of the members' tiers: the whole group is at least this close.
     pub tier: DuplicateTier,
@@ -485,7 +485,7 @@ fn build_group(
 }
 
 /// An image of an evaluated split that also appears in the reference split.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct Leak {
     #[serde(flatten)]
     pub image: ImageRef,
@@ -499,7 +499,7 @@ pub struct Leak {
 }
 
 /// Leak counts of one evaluated split.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct SplitLeakSummary {
     pub split: String,
     pub images: usize,
@@ -507,7 +507,7 @@ pub struct SplitLeakSummary {
     pub leaked_percent: f64,
 }
 
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct LeakReport {
     pub reference_split: String,
     pub summary: Vec<SplitLeakSummary>,
@@ -516,7 +516,7 @@ pub struct LeakReport {
 }
 
 /// Which splits to check against which.
-#[derive(Clone, Debug)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct LeakOptions {
     /// Splits whose images are checked; empty means every split but the reference.
     pub evaluated_splits: Vec<String>,

@@ -34,6 +34,8 @@ pub enum EngineError {
     BadManifest { path: PathBuf, message: String },
     #[error("no image with id {0} in this collection")]
     UnknownImage(u64),
+    #[error("no indexed image has the path {0}")]
+    UnknownPath(String),
     #[error("the collection's embeddings were made by {stored}, but the loaded model is {loaded}")]
     ModelNotCollectionModel { stored: String, loaded: String },
     #[error("invalid argument: {0}")]

@@ -16,7 +16,7 @@
 
 use std::collections::BTreeMap;
 
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 use vitrine_store::{ImageId, Store};
 
 use crate::analytics::calibration::{top_class_outcomes, AccuracyCurve, IsotonicCalibration};
@@ -29,7 +29,7 @@ use crate::error::EngineError;
 use crate::neighbours::check_k;
 
 /// How labels are judged.
-#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum LabelMethod {
     /// Logistic regression trained on the collection's labels, calibrated on
@@ -40,7 +40,7 @@ pub enum LabelMethod {
     NeighbourVote,
 }
 
-#[derive(Clone, Debug, PartialEq)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct LabelOptions {
     pub method: LabelMethod,
     /// Neighbour vote: labelled neighbours that vote.
@@ -75,7 +75,7 @@ impl Default for LabelOptions {
 /// cross-validation on collections of hundreds to thousands of items.
 const FOLDS: usize = 5;
 
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct LabelSuggestion {
     #[serde(flatten)]
     pub image: ImageRef,
@@ -88,7 +88,7 @@ pub struct LabelSuggestion {
 }
 
 /// Suggestions for every unlabelled image and what the cut means.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct SuggestionReport {
     pub method: LabelMethod,
     /// Suggestions are made from this confidence up.
@@ -102,7 +102,7 @@ pub struct SuggestionReport {
     pub suggestions: Vec<LabelSuggestion>,
 }
 
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct LabelSuspect {
     #[serde(flatten)]
     pub image: ImageRef,
@@ -117,7 +117,7 @@ pub struct LabelSuspect {
 }
 
 /// Suspects of one label.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct LabelSuspectCount {
     pub label: String,
     /// Images carrying the label.
@@ -128,7 +128,7 @@ pub struct LabelSuspectCount {
 /// Likely mislabels, most doubtful first, with counts per label: a label
 /// with many suspects reads as an ambiguous class rather than as many
 /// mistakes.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct SuspectReport {
     pub method: LabelMethod,
     pub per_label: Vec<LabelSuspectCount>,

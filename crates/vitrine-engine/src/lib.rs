@@ -13,7 +13,9 @@ pub mod ingest;
 pub mod labels;
 pub mod neighbours;
 pub mod progress;
+pub mod questions;
 pub mod splits;
+pub mod status;
 pub mod verify;
 pub mod walk;
 

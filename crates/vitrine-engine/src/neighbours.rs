@@ -1,13 +1,13 @@
 //! Nearest neighbours of an indexed image, an outside file or a vector.
 
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 use vitrine_store::{ImageId, ImageRecord, Store};
 
 use crate::catalog::{Catalog, ImageRef};
 use crate::error::EngineError;
 
 /// Restricts which images may be returned.
-#[derive(Clone, Debug, Default)]
+#[derive(Clone, Debug, Default, Serialize, Deserialize)]
 pub struct NeighbourFilter {
     pub split: Option<String>,
     pub label: Option<String>,
@@ -83,7 +83,7 @@ pub fn check_k(k: usize) -> Result<(), EngineError> {
 }
 
 /// One neighbour with its cosine similarity to the query.
-#[derive(Clone, Debug, Serialize)]
+#[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct Neighbour {
     #[serde(flatten)]
     pub image: ImageRef,

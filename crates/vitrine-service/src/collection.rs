@@ -21,8 +21,8 @@ use parking_lot::{Mutex, RwLock};
 use serde::Serialize;
 use utoipa::ToSchema;
 use vitrine_engine::catalog::{dot, Catalog};
-use vitrine_engine::clusters::ClusterReport;
-use vitrine_engine::duplicates::{DuplicateReport, LeakReport};
+use vitrine_engine::clusters::{ClusterOptions, ClusterReport};
+use vitrine_engine::duplicates::{DuplicateOptions, DuplicateReport, LeakOptions, LeakReport};
 use vitrine_engine::labels::{LabelOptions, SuggestionReport, SuspectReport};
 use vitrine_engine::neighbours::{
     check_k, nearest_to_image, nearest_to_vector, Neighbour, NeighbourFilter,
@@ -32,7 +32,6 @@ use vitrine_engine::EngineError;
 use vitrine_model::encoder::Encoder;
 use vitrine_store::{FileError, ImageId, ModelFingerprint, Store};
 
-use crate::api::analyses::NearKey;
 use crate::error::ApiError;
 
 /// Everything readers need about a collection at one committed state.
@@ -130,10 +129,10 @@ pub struct Collection {
     store: RwLock<Store>,
     snapshot: RwLock<Arc<Snapshot>>,
     generations: AtomicU64,
-    /// Duplicate reports by their near-pair options.
-    pub duplicates: Memo<NearKey, DuplicateReport>,
-    /// Leak reports by (evaluated splits, reference split, near-pair options).
-    pub leaks: Memo<(Vec<String>, String, NearKey), LeakReport>,
+    /// Duplicate reports by their options.
+    pub duplicates: Memo<DuplicateOptions, DuplicateReport>,
+    /// Leak reports by their options.
+    pub leaks: Memo<LeakOptions, LeakReport>,
     /// Lives as long as the collection, so that pair verdicts outlast one
     /// query: another threshold or a new generation re-checks only new pairs.
     verifier: OnceLock<Arc<PairVerifier>>,
@@ -141,8 +140,8 @@ pub struct Collection {
     verification_stopped: AtomicBool,
     /// A [`PrecomputedReports`] as its discriminant.
     precomputed: AtomicU8,
-    /// Clusterings by (requested number of clusters, seed).
-    pub clusters: Memo<(Option<usize>, u64), ClusterReport>,
+    /// Clusterings by their options.
+    pub clusters: Memo<ClusterOptions, ClusterReport>,
     /// Label suggestions by their options.
     pub label_suggestions: Memo<LabelOptions, SuggestionReport>,
     /// Label suspects by their options.

@@ -174,6 +174,7 @@ impl From<EngineError> for ApiError {
         let message = vitrine_engine::error::describe(&err);
         match err {
             EngineError::UnknownImage(_) => Self::not_found("unknown_image", message),
+            EngineError::UnknownPath(_) => Self::not_found("unknown_path", message),
             EngineError::InvalidArgument(_) => Self::bad_request("invalid_argument", message),
             EngineError::UnknownSplit { .. } => Self::bad_request("unknown_split", message),
             EngineError::UnknownLabel { .. } => Self::bad_request("unknown_label", message),

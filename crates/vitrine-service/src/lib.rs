@@ -8,6 +8,7 @@
 
 pub mod api;
 pub mod collection;
+pub mod discovery;
 pub mod error;
 pub mod jobs;
 pub mod metrics;

@@ -3,7 +3,7 @@
 use utoipa::openapi::security::{HttpAuthScheme, HttpBuilder, SecurityScheme};
 use utoipa::{Modify, OpenApi};
 
-use crate::api::{analyses, clusters, collections, images, jobs, labels, search, system};
+use crate::api::{analyses, clusters, collections, images, jobs, labels, reports, search, system};
 
 /// The versioned API, nested under `/api/v1`.
 #[derive(OpenApi)]
@@ -24,6 +24,7 @@ use crate::api::{analyses, clusters, collections, images, jobs, labels, search, 
     clusters::members,
     labels::suggestions,
     labels::suspects,
+    reports::report,
     jobs::rescan,
     jobs::recluster,
     jobs::status,

@@ -10,6 +10,7 @@ use actix_web::middleware::{from_fn, ErrorHandlerResponse, ErrorHandlers, Next};
 use actix_web::{web, App, HttpServer, ResponseError};
 
 use crate::api::{self, system};
+use crate::discovery::{self, ServedBy};
 use crate::error::{ApiError, ServiceError};
 use crate::metrics;
 use crate::state::{AppState, ServiceConfig};
@@ -188,6 +189,7 @@ impl Service {
             .bind((ip, settings.port))
             .map_err(|source| ServiceError::Bind { bind, source })?;
         let addrs = server.addrs();
+        announce(&state, &addrs);
         // Only once the server is certain to start: the thread keeps the
         // collections open while it works.
         let precompute = if settings.precompute {
@@ -220,6 +222,11 @@ impl Service {
     pub async fn run(self) -> Result<(), ServiceError> {
         let outcome = self.server.await.map_err(ServiceError::Run);
         for collection in self.state.collections.values() {
+            if let Err(err) = ServedBy::remove(&collection.dir) {
+                tracing::warn!(collection = %collection.name, "could not remove {}: {err}", discovery::FILE_NAME);
+            }
+        }
+        for collection in self.state.collections.values() {
             collection.stop_verification();
         }
         let jobs = self.state.jobs.clone();
@@ -235,6 +242,24 @@ impl Service {
             Ok(_) => {}
         }
         outcome
+    }
+}
+
+/// Records in each collection's store folder where the service answers for
+/// it, so that command-line runs on a store the service holds ask it. A
+/// failure only costs that: it is logged and serving goes on.
+fn announce(state: &AppState, addrs: &[SocketAddr]) {
+    let Some(&addr) = addrs.first() else { return };
+    for collection in state.collections.values() {
+        let record = ServedBy::new(addr, &collection.name);
+        if let Err(err) = record.write(&collection.dir) {
+            tracing::warn!(
+                collection = %collection.name,
+                "could not write {} into {}: command-line runs on this store will not find the service: {err}",
+                discovery::FILE_NAME,
+                collection.dir.display()
+            );
+        }
     }
 }
 

@@ -217,13 +217,16 @@ pub struct DuplicatesPage {
 }
 
 /// Which near pairs to accept, as a request asks.
-struct NearQuery {
-    threshold: Option<f32>,
-    candidate_threshold: Option<f32>,
-    verify: Option<bool>,
+pub(crate) struct NearQuery {
+    pub threshold: Option<f32>,
+    pub candidate_threshold: Option<f32>,
+    pub verify: Option<bool>,
 }
 
-fn duplicate_options(state: &AppState, query: NearQuery) -> Result<DuplicateOptions, ApiError> {
+pub(crate) fn duplicate_options(
+    state: &AppState,
+    query: NearQuery,
+) -> Result<DuplicateOptions, ApiError> {
     let defaults = &state.duplicates;
     let cosine = |name: &'static str, value: Option<f32>, default: f32| {
         let value = value.unwrap_or(default);
@@ -268,17 +271,6 @@ fn verifier_for(
     Some(collection.verifier(encoder))
 }
 
-/// What of the near-pair options a memoised report depends on.
-pub type NearKey = (u32, u32, bool);
-
-fn near_key(options: &DuplicateOptions) -> NearKey {
-    (
-        options.near_duplicate_threshold.to_bits(),
-        options.candidate_threshold.to_bits(),
-        options.verify,
-    )
-}
-
 /// The collection's duplicate report for `options`, memoised per generation.
 /// Blocks: run it off the async threads.
 pub(crate) fn duplicate_report(
@@ -289,7 +281,7 @@ pub(crate) fn duplicate_report(
     collection.with_store(BUSY_WAIT, |store, snapshot| {
         collection
             .duplicates
-            .get_or_try(snapshot.generation, near_key(options), || {
+            .get_or_try(snapshot.generation, options.clone(), || {
                 let verifier = verifier_for(state, collection, snapshot, options);
                 find_duplicates(store, &snapshot.catalog, options, verifier.as_deref())
             })
@@ -305,15 +297,10 @@ pub(crate) fn leak_report(
     options: &LeakOptions,
 ) -> Result<Arc<LeakReport>, ApiError> {
     let near = &options.duplicates;
-    let key = (
-        options.evaluated_splits.clone(),
-        options.reference_split.clone(),
-        near_key(near),
-    );
     collection.with_store(BUSY_WAIT, |store, snapshot| {
         collection
             .leaks
-            .get_or_try(snapshot.generation, key, || {
+            .get_or_try(snapshot.generation, options.clone(), || {
                 let verifier = verifier_for(state, collection, snapshot, near);
                 find_leaks_verified(store, &snapshot.catalog, options, verifier.as_deref())
             })

@@ -47,11 +47,9 @@ pub fn clustering(
 ) -> Result<Arc<ClusterReport>, ApiError> {
     collection
         .clusters
-        .get_or_try(
-            snapshot.generation,
-            (options.n_clusters, options.seed),
-            || cluster_collection(&snapshot.catalog, options),
-        )
+        .get_or_try(snapshot.generation, options.clone(), || {
+            cluster_collection(&snapshot.catalog, options)
+        })
         .map_err(ApiError::from)
 }
 

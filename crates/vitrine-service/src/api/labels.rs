@@ -2,15 +2,18 @@
 //! from a classifier trained on the collection's labels (default) or from
 //! votes of labelled neighbours.
 
+use std::sync::Arc;
+
 use actix_web::{get, web, HttpResponse};
 use serde::{Deserialize, Serialize};
 use utoipa::{IntoParams, ToSchema};
 use vitrine_engine::labels::{
     find_label_suspects, suggest_labels, LabelMethod, LabelOptions, LabelSuggestion, LabelSuspect,
-    LabelSuspectCount,
+    LabelSuspectCount, SuggestionReport, SuspectReport,
 };
 
 use super::{blocking, checked_k, PageWindow, State};
+use crate::collection::Collection;
 use crate::error::{ApiError, ErrorBody};
 use crate::settings::ServeSettings;
 use crate::state::BUSY_WAIT;
@@ -77,7 +80,7 @@ fn share(name: &'static str, value: Option<f32>, default: f32) -> Result<f32, Ap
 }
 
 impl LabelParams {
-    fn options(&self, settings: &ServeSettings) -> Result<LabelOptions, ApiError> {
+    pub fn options(&self, settings: &ServeSettings) -> Result<LabelOptions, ApiError> {
         let defaults = LabelOptions::default();
         Ok(LabelOptions {
             method: self.method.map_or(defaults.method, LabelMethod::from),
@@ -96,6 +99,38 @@ impl LabelParams {
             seed: defaults.seed,
         })
     }
+}
+
+/// The collection's label suggestions for `options`, memoised per
+/// generation. Blocks: run it off the async threads.
+pub(crate) fn suggestion_report(
+    collection: &Collection,
+    options: &LabelOptions,
+) -> Result<Arc<SuggestionReport>, ApiError> {
+    collection.with_store(BUSY_WAIT, |store, snapshot| {
+        collection
+            .label_suggestions
+            .get_or_try(snapshot.generation, options.clone(), || {
+                suggest_labels(store, &snapshot.catalog, options)
+            })
+            .map_err(ApiError::from)
+    })
+}
+
+/// The collection's likely mislabelled images for `options`, memoised per
+/// generation. Blocks: run it off the async threads.
+pub(crate) fn suspect_report(
+    collection: &Collection,
+    options: &LabelOptions,
+) -> Result<Arc<SuspectReport>, ApiError> {
+    collection.with_store(BUSY_WAIT, |store, snapshot| {
+        collection
+            .label_suspects
+            .get_or_try(snapshot.generation, options.clone(), || {
+                find_label_suspects(store, &snapshot.catalog, options)
+            })
+            .map_err(ApiError::from)
+    })
 }
 
 #[derive(Debug, Serialize, ToSchema)]
@@ -168,17 +203,7 @@ pub async fn suggestions(
     let collection = state.collection(&path)?;
     let options = query.options(&state.settings)?;
     let window = PageWindow::new(query.page, query.per_page, &state.settings)?;
-    let report = blocking(move || {
-        collection.with_store(BUSY_WAIT, |store, snapshot| {
-            collection
-                .label_suggestions
-                .get_or_try(snapshot.generation, options.clone(), || {
-                    suggest_labels(store, &snapshot.catalog, &options)
-                })
-                .map_err(ApiError::from)
-        })
-    })
-    .await?;
+    let report = blocking(move || suggestion_report(&collection, &options)).await?;
     let all = &report.suggestions;
     Ok(HttpResponse::Ok().json(SuggestionsPage {
         method: report.method.into(),
@@ -281,17 +306,7 @@ pub async fn suspects(
     let collection = state.collection(&path)?;
     let options = query.options(&state.settings)?;
     let window = PageWindow::new(query.page, query.per_page, &state.settings)?;
-    let report = blocking(move || {
-        collection.with_store(BUSY_WAIT, |store, snapshot| {
-            collection
-                .label_suspects
-                .get_or_try(snapshot.generation, options.clone(), || {
-                    find_label_suspects(store, &snapshot.catalog, &options)
-                })
-                .map_err(ApiError::from)
-        })
-    })
-    .await?;
+    let report = blocking(move || suspect_report(&collection, &options)).await?;
     let all = &report.suspects;
     Ok(HttpResponse::Ok().json(SuspectsPage {
         method: report.method.into(),

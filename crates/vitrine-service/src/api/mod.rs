@@ -6,6 +6,7 @@ pub mod collections;
 pub mod images;
 pub mod jobs;
 pub mod labels;
+pub mod reports;
 pub mod search;
 pub mod system;
 
@@ -42,6 +43,7 @@ pub fn configure(cfg: &mut web::ServiceConfig) {
             .service(clusters::members)
             .service(labels::suggestions)
             .service(labels::suspects)
+            .service(reports::report)
             .service(jobs::rescan)
             .service(jobs::recluster)
             .service(jobs::status),

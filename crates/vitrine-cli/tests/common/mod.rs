@@ -1,0 +1,115 @@
+//! What the end-to-end tests share: a temporary folder with a tiny
+//! DINOv2-layout model (the transformers-made fixture of the model crate,
+//! imported through the real binary), a store and images, and commands of the
+//! real `vitrine` binary on them.
+
+// Each test binary uses its own part of this module.
+#![allow(dead_code)]
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+use image::{ImageBuffer, Rgb};
+use serde_json::Value;
+
+pub const BIN: &str = env!("CARGO_BIN_EXE_vitrine");
+
+pub struct Fixture {
+    pub dir: tempfile::TempDir,
+}
+
+impl Fixture {
+    pub fn new() -> Self {
+        let fixture = Fixture {
+            dir: tempfile::tempdir().unwrap(),
+        };
+        std::fs::write(fixture.dir.path().join("vitrine.toml"), "").unwrap();
+        let checkpoint = Path::new(env!("CARGO_MANIFEST_DIR"))
+            .join("../vitrine-model/tests/fixtures/families/dinov2");
+        let out = fixture.run(&[
+            "model",
+            "import",
+            checkpoint.to_str().unwrap(),
+            "--out",
+            fixture.model_dir().to_str().unwrap(),
+            "--id",
+            "tiny-dinov2",
+            "--crop",
+            "32",
+            "--resize",
+            "36",
+        ]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        fixture
+    }
+
+    pub fn model_dir(&self) -> PathBuf {
+        self.dir.path().join("model")
+    }
+
+    pub fn store(&self) -> PathBuf {
+        self.dir.path().join("store")
+    }
+
+    pub fn images(&self) -> PathBuf {
+        self.dir.path().join("images")
+    }
+
+    pub fn command(&self, args: &[&str]) -> Command {
+        let mut command = Command::new(BIN);
+        command
+            .arg("--store")
+            .arg(self.store())
+            .arg("--model")
+            .arg(self.model_dir())
+            .args(args)
+            .env("VITRINE_CONFIG", self.dir.path().join("vitrine.toml"));
+        command
+    }
+
+    pub fn run(&self, args: &[&str]) -> Output {
+        self.command(args).output().unwrap()
+    }
+
+    pub fn index(&self) -> String {
+        let out = self.run(&["index", self.images().to_str().unwrap()]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        String::from_utf8(out.stdout).unwrap()
+    }
+
+    pub fn status(&self) -> Value {
+        let out = self.run(&["status", "--errors", "--format", "json"]);
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
+        serde_json::from_slice(&out.stdout).unwrap()
+    }
+}
+
+/// A distinct picture for every seed: stripes, a disc and a colour ramp.
+pub fn write_image(path: &Path, seed: u32) {
+    std::fs::create_dir_all(path.parent().unwrap()).unwrap();
+    let (w, h) = (48 + seed % 17, 40 + seed % 13);
+    let image = ImageBuffer::from_fn(w, h, |x, y| {
+        let stripe = ((x * (1 + seed % 5) + y * (seed % 3)) / 4 % 2) as u8 * 90;
+        let dx = x as i32 - (seed % w) as i32;
+        let dy = y as i32 - (seed * 7 % h) as i32;
+        let disc = if dx * dx + dy * dy < 120 { 120 } else { 0 };
+        Rgb([
+            stripe.wrapping_add((seed * 37) as u8),
+            (disc as u8).wrapping_add((x * 3) as u8),
+            (y * 5) as u8 ^ (seed * 11) as u8,
+        ])
+    });
+    image.save(path).unwrap();
+}
