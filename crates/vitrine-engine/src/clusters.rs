@@ -141,18 +141,15 @@ pub fn cluster_collection(
         seed: options.seed,
         ..KMeansOptions::new(n_clusters)
     };
-    let invalid = |e: crate::analytics::AnalyticsError| EngineError::InvalidArgument(e.to_string());
-    let result = kmeans(&catalog.embeddings, catalog.dim, &kmeans_options).map_err(invalid)?;
+    let result = kmeans(&catalog.embeddings, catalog.dim, &kmeans_options)?;
     let summaries = summarise_clusters(
         &catalog.embeddings,
         catalog.dim,
         &result.assignments,
         n_clusters,
-    )
-    .map_err(invalid)?;
+    )?;
     let everyone: Vec<usize> = (0..n_items).collect();
-    let collection_cohesion = summarise_cluster(&catalog.embeddings, catalog.dim, &everyone)
-        .map_err(invalid)?
+    let collection_cohesion = summarise_cluster(&catalog.embeddings, catalog.dim, &everyone)?
         .map_or(0.0, |summary| summary.cohesion);
     let mut members: Vec<Vec<usize>> = vec![Vec::new(); n_clusters];
     for (row, &cluster) in result.assignments.iter().enumerate() {

@@ -428,8 +428,7 @@ pub fn find_duplicates(
         });
     }
     // Every edge left has been accepted: group them all.
-    let components = group_by_similarity(edges, f32::NEG_INFINITY)
-        .map_err(|e| EngineError::InvalidArgument(e.to_string()))?;
+    let components = group_by_similarity(edges, f32::NEG_INFINITY)?;
     Ok(DuplicateReport {
         groups: components
             .into_iter()
@@ -550,6 +549,14 @@ pub fn find_leaks(
 /// is set and a verifier is given: each image's reference neighbours from
 /// the candidate threshold up are checked in order of similarity and the
 /// first accepted one is its counterpart.
+/// What the search for one evaluated image's leak found.
+enum LeakSearch {
+    /// A reference image with the same bytes or pixels: a leak without judgement.
+    Exact(Leak),
+    /// Reference images close enough to be judged, best first.
+    Near(Vec<Candidate>),
+}
+
 pub fn find_leaks_verified(
     store: &Store,
     catalog: &Catalog,
@@ -609,7 +616,7 @@ pub fn find_leaks_verified(
         verification,
     };
     // Exact matches need no judgement; the others become near candidates.
-    let found: Vec<Result<Result<Leak, Vec<Candidate>>, EngineError>> = rows
+    let found: Vec<Result<LeakSearch, EngineError>> = rows
         .par_iter()
         .map(|&row| {
             let record = &catalog.records[row];
@@ -622,7 +629,7 @@ pub fn find_leaks_verified(
                         .map(|&other| (other, DuplicateTier::Pixels))
                 });
             if let Some((other, tier)) = exact {
-                return Ok(Ok(leak(
+                return Ok(LeakSearch::Exact(leak(
                     row,
                     other,
                     tier,
@@ -635,26 +642,28 @@ pub fn find_leaks_verified(
             } else {
                 1
             };
-            Ok(Err(store
-                .search(catalog.embedding_at(row), depth, Some(&in_reference))?
-                .into_iter()
-                .filter(|&(_, similarity)| similarity >= floor)
-                .filter_map(|(id, similarity)| {
-                    Some(Candidate {
-                        first: row,
-                        second: catalog.row(id)?,
-                        similarity,
+            Ok(LeakSearch::Near(
+                store
+                    .search(catalog.embedding_at(row), depth, Some(&in_reference))?
+                    .into_iter()
+                    .filter(|&(_, similarity)| similarity >= floor)
+                    .filter_map(|(id, similarity)| {
+                        Some(Candidate {
+                            first: row,
+                            second: catalog.row(id)?,
+                            similarity,
+                        })
                     })
-                })
-                .collect()))
+                    .collect(),
+            ))
         })
         .collect();
     let mut leaks = Vec::new();
     let mut candidates = Vec::new();
     for outcome in found {
         match outcome? {
-            Ok(exact) => leaks.push(exact),
-            Err(near) => candidates.extend(near),
+            LeakSearch::Exact(exact) => leaks.push(exact),
+            LeakSearch::Near(near) => candidates.extend(near),
         }
     }
     let (verdicts, verification) = judge(store, catalog, duplicates, verifier, &candidates)?;

@@ -10,6 +10,11 @@ pub enum EngineError {
     Model(#[from] vitrine_model::error::ModelError),
     #[error(transparent)]
     Imaging(#[from] vitrine_imaging::ImagingError),
+    /// An algorithm refused its input (each names the offending argument).
+    #[error(transparent)]
+    Analytics(#[from] crate::analytics::AnalyticsError),
+    #[error("cannot encode a note on a pair of files: {0}")]
+    PairNoteEncoding(serde_json::Error),
     #[error("root {root} cannot be read: {message}")]
     UnreadableRoot { root: PathBuf, message: String },
     #[error("root {root} does not exist")]

@@ -359,7 +359,7 @@ fn embed_chunk(
         .par_iter()
         .enumerate()
         .map(|(pending_index, pending)| {
-            let decoded = decode_one(
+            decode_one(
                 store,
                 pending_index,
                 pending,
@@ -367,12 +367,7 @@ fn embed_chunk(
                 options,
                 &decode_options,
                 spec,
-            );
-            match decoded {
-                Ok(decoded) => Outcome::Decoded(decoded),
-                Err(None) => Outcome::NotAnImage,
-                Err(Some(error)) => Outcome::Failed(error),
-            }
+            )
         })
         .collect();
 
@@ -453,8 +448,7 @@ fn with_causes(error: &dyn std::error::Error) -> String {
     text
 }
 
-/// Reads, hashes, decodes and preprocesses one file. `Err(None)` means the
-/// file is not an image and does not claim to be one.
+/// Reads, hashes, decodes and preprocesses one file.
 fn decode_one(
     store: &Store,
     pending_index: usize,
@@ -463,24 +457,30 @@ fn decode_one(
     options: &IndexOptions,
     decode_options: &DecodeOptions,
     spec: &vitrine_imaging::PreprocessSpec,
-) -> Result<Decoded, Option<FileError>> {
-    let fail = |reason: String| FileError {
-        root: root_id,
-        rel_path: pending.file.rel_path.clone(),
-        reason,
-        at_unix_s: now_unix_s(),
+) -> Outcome {
+    let fail = |reason: String| {
+        Outcome::Failed(FileError {
+            root: root_id,
+            rel_path: pending.file.rel_path.clone(),
+            reason,
+            at_unix_s: now_unix_s(),
+        })
     };
-    let bytes = std::fs::read(&pending.file.abs_path)
-        .map_err(|e| Some(fail(format!("cannot read: {e}"))))?;
+    let bytes = match std::fs::read(&pending.file.abs_path) {
+        Ok(bytes) => bytes,
+        Err(e) => return fail(format!("cannot read: {e}")),
+    };
     let content_hash = *blake3::hash(&bytes).as_bytes();
-    let decoded = decode_bytes(&bytes, decode_options).map_err(|e| match e {
-        ImagingError::NotAnImage | ImagingError::EmptyFile
+    let decoded = match decode_bytes(&bytes, decode_options) {
+        Ok(decoded) => decoded,
+        // A file that is not an image and does not claim to be one is skipped.
+        Err(ImagingError::NotAnImage | ImagingError::EmptyFile)
             if !has_image_extension(&pending.file.rel_path) =>
         {
-            None
+            return Outcome::NotAnImage
         }
-        e => Some(fail(e.to_string())),
-    })?;
+        Err(e) => return fail(e.to_string()),
+    };
     let mut pixel_hasher = blake3::Hasher::new();
     pixel_hasher.update(&decoded.rgb.width().to_le_bytes());
     pixel_hasher.update(&decoded.rgb.height().to_le_bytes());
@@ -498,14 +498,18 @@ fn decode_one(
         split: assigned.split,
         label: assigned.label,
     };
-    let known_embedding = store
-        .embedding_by_content_hash(&content_hash)
-        .map_err(|e| Some(fail(with_causes(&e))))?;
+    let known_embedding = match store.embedding_by_content_hash(&content_hash) {
+        Ok(known) => known,
+        Err(e) => return fail(with_causes(&e)),
+    };
     let prepared = match known_embedding {
         Some(_) => None,
-        None => Some(preprocess(&decoded.rgb, spec).map_err(|e| Some(fail(e.to_string())))?),
+        None => match preprocess(&decoded.rgb, spec) {
+            Ok(prepared) => Some(prepared),
+            Err(e) => return fail(e.to_string()),
+        },
     };
-    Ok(Decoded {
+    Outcome::Decoded(Decoded {
         pending_index,
         record,
         prepared,

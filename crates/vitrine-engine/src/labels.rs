@@ -23,7 +23,6 @@ use crate::analytics::calibration::{top_class_outcomes, AccuracyCurve, IsotonicC
 use crate::analytics::cross_validation::{out_of_fold_logits, stratified_folds};
 use crate::analytics::label_vote::{label_disagreement, vote_label, VotingNeighbour};
 use crate::analytics::logistic::{softmax_rows, LogisticRegressionOptions};
-use crate::analytics::AnalyticsError;
 use crate::catalog::{Catalog, ImageRef};
 use crate::error::EngineError;
 use crate::neighbours::check_k;
@@ -137,10 +136,6 @@ pub struct SuspectReport {
     pub suspects: Vec<LabelSuspect>,
 }
 
-fn invalid(e: AnalyticsError) -> EngineError {
-    EngineError::InvalidArgument(e.to_string())
-}
-
 impl LabelOptions {
     /// `Ok` for options that can give an answer.
     fn check(&self) -> Result<(), EngineError> {
@@ -219,7 +214,7 @@ impl Classifier {
         let vectors = standard.vectors(catalog, &rows);
         let n_classes = classes.len();
         let options = LogisticRegressionOptions::default();
-        let folds = stratified_folds(&row_classes, n_classes, FOLDS, seed).map_err(invalid)?;
+        let folds = stratified_folds(&row_classes, n_classes, FOLDS, seed)?;
         let fitted = out_of_fold_logits(
             &vectors,
             dim,
@@ -228,16 +223,15 @@ impl Classifier {
             &folds,
             FOLDS,
             &options,
-        )
-        .map_err(invalid)?;
-        let out_of_fold = softmax_rows(&fitted.logits, n_classes).map_err(invalid)?;
+        )?;
+        let out_of_fold = softmax_rows(&fitted.logits, n_classes)?;
         // The fold models, averaged, judge the unlabelled images: a model
         // fitted on every labelled image would be more confident than the
         // out-of-fold judgements the calibration learned from.
         let unlabelled_vectors = standard.vectors(catalog, &unlabelled);
         let mut unlabelled_probabilities = vec![0f32; unlabelled.len() * n_classes];
         for model in fitted.models.iter().filter(|_| !unlabelled.is_empty()) {
-            let probabilities = model.probabilities(&unlabelled_vectors).map_err(invalid)?;
+            let probabilities = model.probabilities(&unlabelled_vectors)?;
             for (total, p) in unlabelled_probabilities.iter_mut().zip(probabilities) {
                 *total += p / fitted.models.len() as f32;
             }
@@ -269,11 +263,9 @@ impl Classifier {
         options: &LabelOptions,
     ) -> Result<SuggestionReport, EngineError> {
         let n_classes = self.classes.len();
-        let outcomes =
-            top_class_outcomes(&self.out_of_fold, n_classes, &self.row_classes).map_err(invalid)?;
-        let calibration = IsotonicCalibration::fit(&outcomes).map_err(invalid)?;
-        let calibrated =
-            AccuracyCurve::new(&calibration.calibrate_outcomes(&outcomes)).map_err(invalid)?;
+        let outcomes = top_class_outcomes(&self.out_of_fold, n_classes, &self.row_classes)?;
+        let calibration = IsotonicCalibration::fit(&outcomes)?;
+        let calibrated = AccuracyCurve::new(&calibration.calibrate_outcomes(&outcomes))?;
         let mut suggestions: Vec<LabelSuggestion> = self
             .unlabelled
             .iter()
@@ -293,7 +285,7 @@ impl Classifier {
         Ok(SuggestionReport {
             method: LabelMethod::Classifier,
             cut,
-            expected_accuracy: calibrated.at_cut(cut).map_err(invalid)?.accuracy,
+            expected_accuracy: calibrated.at_cut(cut)?.accuracy,
             note: self.note(),
             suggestions,
         })
@@ -501,7 +493,7 @@ pub fn suggest_label(
     options.check()?;
     let row = catalog.row(id).ok_or(EngineError::UnknownImage(id))?;
     let neighbours = labelled_neighbours(store, catalog, row, options.k)?;
-    let vote = vote_label(&neighbours, options.min_confidence).map_err(invalid)?;
+    let vote = vote_label(&neighbours, options.min_confidence)?;
     Ok(LabelSuggestion {
         image: catalog.image_ref(row),
         suggested_label: vote.predicted_label().cloned(),
@@ -577,8 +569,7 @@ fn neighbour_vote_suspects(
             });
         count.labelled += 1;
         let neighbours = labelled_neighbours(store, catalog, row, options.k)?;
-        let verdict =
-            label_disagreement(own_label, &neighbours, options.min_confidence).map_err(invalid)?;
+        let verdict = label_disagreement(own_label, &neighbours, options.min_confidence)?;
         if verdict.disagreement >= options.min_disagreement {
             count.suspects += 1;
             suspects.push(LabelSuspect {

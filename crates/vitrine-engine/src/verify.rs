@@ -896,8 +896,7 @@ impl PairVerifier {
         for (a, b) in pairs {
             let (a, b) = in_canonical_order(a, b);
             if let Some(check) = self.remembered(a, b) {
-                let note = serde_json::to_vec(&check)
-                    .map_err(|e| EngineError::InvalidArgument(e.to_string()))?;
+                let note = serde_json::to_vec(&check).map_err(EngineError::PairNoteEncoding)?;
                 notes.push((a.content_hash, b.content_hash, note));
             }
         }

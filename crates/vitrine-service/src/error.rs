@@ -175,7 +175,9 @@ impl From<EngineError> for ApiError {
         match err {
             EngineError::UnknownImage(_) => Self::not_found("unknown_image", message),
             EngineError::UnknownPath(_) => Self::not_found("unknown_path", message),
-            EngineError::InvalidArgument(_) => Self::bad_request("invalid_argument", message),
+            EngineError::InvalidArgument(_) | EngineError::Analytics(_) => {
+                Self::bad_request("invalid_argument", message)
+            }
             EngineError::UnknownSplit { .. } => Self::bad_request("unknown_split", message),
             EngineError::UnknownLabel { .. } => Self::bad_request("unknown_label", message),
             EngineError::NoImageMatches(_) => Self::bad_request("no_image_matches", message),

@@ -72,6 +72,12 @@ pub fn content_hash_prefix(hash: &[u8; 32]) -> [u8; 33] {
     key
 }
 
+/// The image id in a `content_hash` key, or `None` if the key is malformed.
+pub fn id_of_content_hash(key: &[u8]) -> Option<ImageId> {
+    let bytes: [u8; 8] = key.get(33..)?.try_into().ok()?;
+    (key[0] == CONTENT_HASH).then(|| ImageId::from_be_bytes(bytes))
+}
+
 pub fn content_hash(hash: &[u8; 32], id: ImageId) -> [u8; 41] {
     let mut key = [0u8; 41];
     key[..33].copy_from_slice(&content_hash_prefix(hash));
@@ -86,6 +92,15 @@ pub fn pair_note(kind: &[u8; 8], first: &[u8; 32], second: &[u8; 32]) -> [u8; 73
     key[9..41].copy_from_slice(first);
     key[41..].copy_from_slice(second);
     key
+}
+
+/// The two content hashes a `pair_note` key names, or `None` if the key is
+/// malformed.
+pub fn hashes_of_pair_note(key: &[u8]) -> Option<([u8; 32], [u8; 32])> {
+    if key.len() != 73 || key[0] != PAIR_NOTE {
+        return None;
+    }
+    Some((key[9..41].try_into().ok()?, key[41..].try_into().ok()?))
 }
 
 pub fn root(root: u32) -> [u8; 5] {
@@ -129,4 +144,26 @@ pub fn decode_embedding(bytes: &[u8], dim: usize) -> Option<Vec<f32>> {
             .map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]))
             .collect(),
     )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn keys_that_are_parsed_back_give_what_was_put_in() {
+        let (first, second) = ([7u8; 32], [9u8; 32]);
+        assert_eq!(
+            hashes_of_pair_note(&pair_note(b"verdict1", &first, &second)),
+            Some((first, second))
+        );
+        assert_eq!(
+            hashes_of_pair_note(&pair_note(b"verdict1", &first, &second)[..72]),
+            None
+        );
+        assert_eq!(id_of_content_hash(&content_hash(&first, 42)), Some(42));
+        assert_eq!(id_of_content_hash(&content_hash_prefix(&first)), None);
+        assert_eq!(id_of(&record(u64::MAX)), Some(u64::MAX));
+        assert_eq!(root_of(&root(3)), Some(3));
+    }
 }

@@ -164,12 +164,12 @@ impl Store {
         for entry in self.records() {
             live.insert(entry?.1.content_hash);
         }
-        let names_live = |hash: &[u8]| <[u8; 32]>::try_from(hash).is_ok_and(|h| live.contains(&h));
         let mut batch = sled::Batch::default();
         let mut forgotten = 0;
         for entry in self.db.scan_prefix([keys::PAIR_NOTE]) {
             let (key, _) = entry.map_err(self.db_error())?;
-            let kept = key.len() == 73 && names_live(&key[9..41]) && names_live(&key[41..]);
+            let kept = keys::hashes_of_pair_note(&key)
+                .is_some_and(|(first, second)| live.contains(&first) && live.contains(&second));
             if !kept {
                 batch.remove(key);
                 forgotten += 1;
@@ -348,10 +348,9 @@ impl Store {
             return Ok(None);
         };
         let (key, _) = entry.map_err(self.db_error())?;
-        let id_bytes: [u8; 8] = key[prefix.len()..]
-            .try_into()
-            .map_err(|_| self.corrupt(&key, "content hash entry without image id".into()))?;
-        self.embedding(ImageId::from_be_bytes(id_bytes))
+        let id = keys::id_of_content_hash(&key)
+            .ok_or_else(|| self.corrupt(&key, "content hash entry without image id".into()))?;
+        self.embedding(id)
     }
 
     pub fn records(&self) -> impl Iterator<Item = Result<(ImageId, ImageRecord), StoreError>> + '_ {
