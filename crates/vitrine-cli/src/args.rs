@@ -92,6 +92,19 @@ pub enum Command {
     /// Label suggestions and likely mislabels.
     #[command(subcommand)]
     Labels(LabelCommand),
+    /// Record what you decided about reported images. Decisions are kept in
+    /// the store; your image files are never moved, changed or deleted.
+    #[command(subcommand)]
+    Decide(DecideCommand),
+    /// Write the clean training list (dropped images left out, given splits
+    /// and labels applied) or the decision log.
+    Export {
+        #[arg(long, value_enum)]
+        format: ExportFormat,
+        /// Write to this file instead of standard output.
+        #[arg(long, value_name = "FILE")]
+        output: Option<PathBuf>,
+    },
     /// Serve the collections over HTTP: JSON API, metrics and the page.
     Serve(ServeArgs),
     /// Measure near-duplicate thresholds on copies of a sample, edited in
@@ -106,6 +119,81 @@ pub enum Command {
         #[command(flatten)]
         output: OutputArgs,
     },
+}
+
+#[derive(Subcommand, Debug)]
+pub enum DecideCommand {
+    /// Leave these images out of the training list (paths relative to their
+    /// root, as reports print them).
+    Drop {
+        #[arg(required = true, value_name = "PATH")]
+        paths: Vec<String>,
+        #[command(flatten)]
+        who: WhoArgs,
+    },
+    /// Keep these images (a group's keeper; a leak judged harmless).
+    Keep {
+        #[arg(required = true, value_name = "PATH")]
+        paths: Vec<String>,
+        #[command(flatten)]
+        who: WhoArgs,
+    },
+    /// These two images are not copies: later reports leave the pair out.
+    Distinct {
+        first: String,
+        second: String,
+        #[command(flatten)]
+        who: WhoArgs,
+    },
+    /// Give an image a label (accept a suggestion, correct a mislabel, or
+    /// confirm the label it has).
+    Label {
+        path: String,
+        label: String,
+        #[command(flatten)]
+        who: WhoArgs,
+    },
+    /// Turn down the label suggested for an image.
+    Reject {
+        path: String,
+        #[command(flatten)]
+        who: WhoArgs,
+    },
+    /// Put an image into another split of the training list.
+    Split {
+        path: String,
+        split: String,
+        #[command(flatten)]
+        who: WhoArgs,
+    },
+    /// Take back a decision (default: the latest one still in effect).
+    Undo {
+        number: Option<u64>,
+        #[command(flatten)]
+        who: WhoArgs,
+    },
+    /// The decision log, with what was undone and what is stale.
+    List {
+        #[command(flatten)]
+        output: OutputArgs,
+    },
+}
+
+#[derive(Args, Debug)]
+pub struct WhoArgs {
+    /// Who decides (default: the user name from $USER).
+    #[arg(long, value_name = "NAME")]
+    pub by: Option<String>,
+}
+
+#[derive(Clone, Copy, Debug, clap::ValueEnum)]
+pub enum ExportFormat {
+    /// CSV `path,split,label`, the layout `index --manifest` reads.
+    Manifest,
+    /// The decision log as CSV.
+    DecisionsCsv,
+    /// The decision log as JSON Lines.
+    DecisionsJsonl,
 }
 
 #[derive(Subcommand, Debug)]

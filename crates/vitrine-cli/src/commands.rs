@@ -10,6 +10,7 @@ use serde::Serialize;
 use vitrine_engine::calibrate::{calibrate, CalibrationOptions};
 use vitrine_engine::catalog::Catalog;
 use vitrine_engine::clusters::ClusterOptions;
+use vitrine_engine::decisions::{self, Action, DecisionState};
 use vitrine_engine::duplicates::LeakOptions;
 use vitrine_engine::ingest::{fingerprint_of, index_roots, resolve_roots, IndexOptions};
 use vitrine_engine::labels::LabelOptions;
@@ -24,15 +25,15 @@ use vitrine_model::fetch::fetch_default_model;
 use vitrine_store::Store;
 
 use crate::args::{
-    Cli, Command, ImportArgs, IndexArgs, LabelCommand, ModelCommand, NormalisationArg, PoolingArg,
-    ServeArgs, SimilarArgs, ThresholdArgs,
+    Cli, Command, DecideCommand, ExportFormat, ImportArgs, IndexArgs, LabelCommand, ModelCommand,
+    NormalisationArg, PoolingArg, ServeArgs, SimilarArgs, ThresholdArgs,
 };
 use crate::collection::{self, Answers};
-use crate::output::{emit, OutputArgs};
+use crate::output::{emit, Format, OutputArgs};
 use crate::progress::StderrProgress;
 use crate::reports::{
-    CalibrationTable, ClusterTable, DuplicateTable, LeakTable, NeighbourTable, StatusTable,
-    SuggestionTable, SuspectTable,
+    CalibrationTable, ClusterTable, DecisionTable, DuplicateTable, LeakTable, ManifestTable,
+    NeighbourTable, StatusTable, SuggestionTable, SuspectTable,
 };
 use crate::session::{decode_options, embed_file, Session};
 use crate::settings::Settings;
@@ -104,6 +105,8 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
             let report = collection::open(&ctx)?.label_suspects(&options)?;
             emit(&SuspectTable(report), &output)?;
         }
+        Command::Decide(command) => decide(&ctx, command)?,
+        Command::Export { format, output } => export(&ctx, format, output)?,
         Command::Serve(args) => serve(&ctx, &args)?,
         Command::Calibrate {
             sample,
@@ -241,6 +244,96 @@ fn outside_query(ctx: &Session, collection: &dyn Answers, file: &Path) -> Result
         bail!("the collection was made with {stored}, the loaded model is {loaded}");
     }
     embed_file(&encoder, &ctx.settings, file)
+}
+
+fn decide(ctx: &Session, command: DecideCommand) -> Result<()> {
+    let store = ctx.open_store()?;
+    let catalog = Catalog::load(&store)?;
+    let file = |path: &str| decisions::file_ref(&catalog, path);
+    let (actions, who) = match command {
+        DecideCommand::List { output } => {
+            let state = DecisionState::load(&store, &catalog)?;
+            return emit(&DecisionTable(state.log), &output);
+        }
+        DecideCommand::Drop { paths, who } => (
+            paths
+                .iter()
+                .map(|path| Ok(Action::Drop { image: file(path)? }))
+                .collect::<Result<Vec<_>>>()?,
+            who,
+        ),
+        DecideCommand::Keep { paths, who } => (
+            paths
+                .iter()
+                .map(|path| Ok(Action::Keep { image: file(path)? }))
+                .collect::<Result<Vec<_>>>()?,
+            who,
+        ),
+        DecideCommand::Distinct { first, second, who } => (
+            vec![Action::Distinct {
+                first: file(&first)?,
+                second: file(&second)?,
+            }],
+            who,
+        ),
+        DecideCommand::Label { path, label, who } => (
+            vec![Action::Label {
+                image: file(&path)?,
+                label,
+            }],
+            who,
+        ),
+        DecideCommand::Reject { path, who } => (
+            vec![Action::RejectSuggestion {
+                image: file(&path)?,
+            }],
+            who,
+        ),
+        DecideCommand::Split { path, split, who } => (
+            vec![Action::Split {
+                image: file(&path)?,
+                split,
+            }],
+            who,
+        ),
+        DecideCommand::Undo { number, who } => {
+            let decision = match number {
+                Some(number) => number,
+                None => decisions::last_undoable(&DecisionState::load(&store, &catalog)?)
+                    .context("there is no decision to undo")?,
+            };
+            (vec![Action::Undo { decision }], who)
+        }
+    };
+    let by = match who.by {
+        Some(by) => by,
+        None => std::env::var("USER")
+            .or_else(|_| std::env::var("USERNAME"))
+            .context("no user name in $USER; say who decides with --by NAME")?,
+    };
+    for action in actions {
+        let recorded = decisions::record(&store, &catalog, &by, action, None)?;
+        let [name, subject, detail] = crate::reports::action_cells(&recorded.decision.action);
+        println!("decision {}: {name} {subject} {detail}", recorded.number);
+    }
+    Ok(())
+}
+
+fn export(ctx: &Session, format: ExportFormat, output: Option<PathBuf>) -> Result<()> {
+    let store = ctx.open_store()?;
+    let catalog = Catalog::load(&store)?;
+    let state = DecisionState::load(&store, &catalog)?;
+    let with_format = |format| OutputArgs { format, output };
+    match format {
+        ExportFormat::Manifest => emit(
+            &ManifestTable(decisions::clean_manifest(&catalog, &state)),
+            &with_format(Format::Csv),
+        ),
+        ExportFormat::DecisionsCsv => emit(&DecisionTable(state.log), &with_format(Format::Csv)),
+        ExportFormat::DecisionsJsonl => {
+            emit(&DecisionTable(state.log), &with_format(Format::Jsonl))
+        }
+    }
 }
 
 fn calibrate_thresholds(

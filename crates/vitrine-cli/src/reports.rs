@@ -4,6 +4,7 @@
 use anyhow::Result;
 use vitrine_engine::calibrate::{CalibrationReport, ThresholdPoint};
 use vitrine_engine::clusters::ClusterReport;
+use vitrine_engine::decisions::{Action, Fate, LoggedDecision, ManifestRow};
 use vitrine_engine::duplicates::{DuplicateGroup, DuplicateReport, DuplicateTier, LeakReport};
 use vitrine_engine::labels::{
     LabelMethod, LabelSuggestion, LabelSuspect, SuggestionReport, SuspectReport,
@@ -113,6 +114,13 @@ impl Report for NeighbourTable {
     }
 }
 
+fn fate_name(fate: Fate) -> String {
+    match fate {
+        Fate::Keep => "keep".into(),
+        Fate::Drop => "drop".into(),
+    }
+}
+
 fn tier_name(tier: DuplicateTier) -> String {
     format!("{tier:?}").to_lowercase()
 }
@@ -138,6 +146,7 @@ impl Report for DuplicateTable {
             "split",
             "size",
             "path",
+            "decision",
         ]
     }
     fn rows(&self) -> Vec<Vec<String>> {
@@ -158,6 +167,7 @@ impl Report for DuplicateTable {
                     opt(&member.image.split),
                     format!("{}x{}", member.width, member.height),
                     member.image.path.clone(),
+                    member.decision.map(fate_name).unwrap_or_default(),
                 ]);
             }
         }
@@ -166,10 +176,17 @@ impl Report for DuplicateTable {
     fn preamble(&self) -> Vec<String> {
         let images: usize = self.0.groups.iter().map(|g| g.members.len()).sum();
         let verification = &self.0.verification;
+        let decided = self.0.groups.iter().filter(|g| g.decided).count();
         let mut lines = vec![format!(
-            "{} duplicate groups, {images} images; * marks the suggested keeper (nothing is deleted)",
+            "{} duplicate groups, {images} images, {decided} groups decided; * marks the suggested keeper (nothing is deleted)",
             self.0.groups.len()
         )];
+        if self.0.left_out_as_distinct > 0 {
+            lines.push(format!(
+                "{} pairs left out: decided not to be copies",
+                self.0.left_out_as_distinct
+            ));
+        }
         if verification.applied {
             lines.push(format!(
                 "near pairs verified: {} candidates, {} confirmed ({} below the threshold), {} rejected above it",
@@ -198,7 +215,14 @@ impl Report for LeakTable {
         self.0.leaks.iter().collect()
     }
     fn columns(&self) -> Vec<&'static str> {
-        vec!["split", "path", "tier", "similarity", "counterpart"]
+        vec![
+            "split",
+            "path",
+            "tier",
+            "similarity",
+            "counterpart",
+            "decided",
+        ]
     }
     fn rows(&self) -> Vec<Vec<String>> {
         self.0
@@ -211,6 +235,11 @@ impl Report for LeakTable {
                     tier_name(leak.tier),
                     score(leak.similarity),
                     leak.counterpart.path.clone(),
+                    if leak.decided {
+                        "yes".into()
+                    } else {
+                        String::new()
+                    },
                 ]
             })
             .collect()
@@ -227,6 +256,14 @@ impl Report for LeakTable {
                 )
             })
             .collect();
+        let decided = self.0.leaks.iter().filter(|l| l.decided).count();
+        lines.push(format!("{decided} of {} leaks decided", self.0.leaks.len()));
+        if self.0.left_out_as_distinct > 0 {
+            lines.push(format!(
+                "{} pairs left out: decided not to be copies",
+                self.0.left_out_as_distinct
+            ));
+        }
         lines.push(String::new());
         lines
     }
@@ -473,5 +510,91 @@ impl Report for SuspectTable {
         lines.extend(report.note.iter().map(|note| format!("note: {note}")));
         lines.push(String::new());
         lines
+    }
+}
+
+pub struct DecisionTable(pub Vec<LoggedDecision>);
+
+/// The action's name and what it names, for tables and CSV.
+pub fn action_cells(action: &Action) -> [String; 3] {
+    match action {
+        Action::Drop { image } => ["drop".into(), image.path.clone(), String::new()],
+        Action::Keep { image } => ["keep".into(), image.path.clone(), String::new()],
+        Action::Distinct { first, second } => {
+            ["distinct".into(), first.path.clone(), second.path.clone()]
+        }
+        Action::Label { image, label } => ["label".into(), image.path.clone(), label.clone()],
+        Action::RejectSuggestion { image } => [
+            "reject_suggestion".into(),
+            image.path.clone(),
+            String::new(),
+        ],
+        Action::Split { image, split } => ["split".into(), image.path.clone(), split.clone()],
+        Action::Undo { decision } => ["undo".into(), decision.to_string(), String::new()],
+    }
+}
+
+impl Report for DecisionTable {
+    type Item = LoggedDecision;
+    fn document(&self) -> Result<serde_json::Value> {
+        Ok(serde_json::to_value(&self.0)?)
+    }
+    fn items(&self) -> Vec<&LoggedDecision> {
+        self.0.iter().collect()
+    }
+    fn columns(&self) -> Vec<&'static str> {
+        vec![
+            "number",
+            "at_unix_s",
+            "by",
+            "action",
+            "subject",
+            "detail",
+            "state",
+        ]
+    }
+    fn rows(&self) -> Vec<Vec<String>> {
+        self.0
+            .iter()
+            .map(|d| {
+                let [action, subject, detail] = action_cells(&d.decision.action);
+                let state = match (d.undone_by, d.stale) {
+                    (Some(undo), _) => format!("undone by {undo}"),
+                    (None, true) => "stale: the file changed or is gone".into(),
+                    (None, false) => "in effect".into(),
+                };
+                vec![
+                    d.number.to_string(),
+                    d.decision.at_unix_s.to_string(),
+                    d.decision.by.clone(),
+                    action,
+                    subject,
+                    detail,
+                    state,
+                ]
+            })
+            .collect()
+    }
+}
+
+/// A training list in the `path,split,label` layout of `index --manifest`.
+pub struct ManifestTable(pub Vec<ManifestRow>);
+
+impl Report for ManifestTable {
+    type Item = ManifestRow;
+    fn document(&self) -> Result<serde_json::Value> {
+        Ok(serde_json::to_value(&self.0)?)
+    }
+    fn items(&self) -> Vec<&ManifestRow> {
+        self.0.iter().collect()
+    }
+    fn columns(&self) -> Vec<&'static str> {
+        vec!["path", "split", "label"]
+    }
+    fn rows(&self) -> Vec<Vec<String>> {
+        self.0
+            .iter()
+            .map(|row| vec![row.path.clone(), row.split.clone(), row.label.clone()])
+            .collect()
     }
 }

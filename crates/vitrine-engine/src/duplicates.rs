@@ -21,6 +21,7 @@ use vitrine_store::{ImageId, Store};
 
 use crate::analytics::grouping::{group_by_similarity, SimilarityEdge};
 use crate::catalog::{Catalog, ImageRef};
+use crate::decisions::{DecisionState, Fate};
 use crate::error::EngineError;
 use crate::verify::{PairCheck, PairVerifier, VerifiedFile};
 
@@ -121,6 +122,8 @@ pub struct VerificationSummary {
 pub struct DuplicateReport {
     pub groups: Vec<DuplicateGroup>,
     pub verification: VerificationSummary,
+    /// Pairs left out because a person decided they are not copies.
+    pub left_out_as_distinct: usize,
 }
 
 /// One member of a duplicate group.
@@ -144,6 +147,9 @@ pub struct GroupMember {
     pub width: u32,
     pub height: u32,
     pub byte_size: u64,
+    /// What a person decided for this image.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub decision: Option<Fate>,
 }
 
 /// A group of images that are copies of one picture.
@@ -153,6 +159,9 @@ pub struct DuplicateGroup {
     pub tier: DuplicateTier,
     /// The suggested keeper first, then the others by decreasing similarity.
     pub members: Vec<GroupMember>,
+    /// A person has settled the group: every member is decided, or all but
+    /// one are dropped.
+    pub decided: bool,
 }
 
 /// Keeper rule: most pixels, then largest file, then shortest path, then the
@@ -409,8 +418,24 @@ pub fn find_duplicates(
             .enumerate()
             .map(|(row, r)| (r.pixel_hash, row)),
     ));
+    let decisions = DecisionState::load(store, catalog)?;
+    let distinct = |first: usize, second: usize| {
+        decisions.are_distinct(&catalog.records[first], &catalog.records[second])
+    };
+    // A pair can be found both as identical and as near: counted once.
+    let mut left_out: HashSet<(usize, usize)> = HashSet::new();
+    let mut keep_unless_distinct = |first: usize, second: usize| {
+        let leave_out = distinct(first, second);
+        if leave_out {
+            left_out.insert((first.min(second), first.max(second)));
+        }
+        !leave_out
+    };
+    edges.retain(|edge| keep_unless_distinct(edge.first, edge.second));
     let floor = candidate_floor(options, verifier);
-    let candidates = near_candidates(store, catalog, options, floor)?;
+    let mut candidates = near_candidates(store, catalog, options, floor)?;
+    candidates.retain(|c| keep_unless_distinct(c.first, c.second));
+    let left_out_as_distinct = left_out.len();
     let (verdicts, verification) = judge(store, catalog, options, verifier, &candidates)?;
     let mut verification_of: HashMap<usize, Verification> = HashMap::new();
     for (candidate, verdict) in candidates.iter().zip(verdicts) {
@@ -432,9 +457,10 @@ pub fn find_duplicates(
     Ok(DuplicateReport {
         groups: components
             .into_iter()
-            .map(|rows| build_group(catalog, rows, &verification_of))
+            .map(|rows| build_group(catalog, rows, &verification_of, &decisions))
             .collect(),
         verification,
+        left_out_as_distinct,
     })
 }
 
@@ -442,6 +468,7 @@ fn build_group(
     catalog: &Catalog,
     mut rows: Vec<usize>,
     verification_of: &HashMap<usize, Verification>,
+    decisions: &DecisionState,
 ) -> DuplicateGroup {
     rows.sort_by(|&a, &b| keeper_order(catalog, a, b));
     let keeper = rows[0];
@@ -472,6 +499,7 @@ fn build_group(
                 width: record.width,
                 height: record.height,
                 byte_size: record.byte_size,
+                decision: decisions.fate(catalog.ids[row]),
             }
         })
         .collect();
@@ -480,7 +508,16 @@ fn build_group(
         .filter_map(|m| m.tier)
         .max()
         .unwrap_or(DuplicateTier::Bytes);
-    DuplicateGroup { tier, members }
+    let undecided = members.iter().filter(|m| m.decision.is_none()).count();
+    let not_dropped = members
+        .iter()
+        .filter(|m| m.decision != Some(Fate::Drop))
+        .count();
+    DuplicateGroup {
+        tier,
+        decided: undecided == 0 || not_dropped <= 1,
+        members,
+    }
 }
 
 /// An image of an evaluated split that also appears in the reference split.
@@ -495,6 +532,9 @@ pub struct Leak {
     /// For near-tier leaks: how the pair was judged.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub verification: Option<Verification>,
+    /// A person has settled the leak: one side dropped, or the image given
+    /// another split.
+    pub decided: bool,
 }
 
 /// Leak counts of one evaluated split.
@@ -512,6 +552,8 @@ pub struct LeakReport {
     pub summary: Vec<SplitLeakSummary>,
     pub leaks: Vec<Leak>,
     pub verification: VerificationSummary,
+    /// Pairs left out because a person decided they are not copies.
+    pub left_out_as_distinct: usize,
 }
 
 /// Which splits to check against which.
@@ -533,8 +575,6 @@ impl Default for LeakOptions {
     }
 }
 
-/// Every image of the evaluated splits with a duplicate-tier match in the
-/// reference split, with a per-split summary.
 /// Every image of the evaluated splits with a duplicate-tier match in the
 /// reference split, with near pairs judged on the cosine threshold alone.
 pub fn find_leaks(
@@ -608,12 +648,24 @@ pub fn find_leaks_verified(
         .collect();
     let duplicates = &options.duplicates;
     let floor = candidate_floor(duplicates, verifier);
-    let leak = |row: usize, other: usize, tier, similarity, verification| Leak {
-        image: catalog.image_ref(row),
-        counterpart: catalog.image_ref(other),
-        tier,
-        similarity,
-        verification,
+    let decisions = DecisionState::load(store, catalog)?;
+    let distinct = |first: usize, second: usize| {
+        decisions.are_distinct(&catalog.records[first], &catalog.records[second])
+    };
+    let leak = |row: usize, other: usize, tier, similarity, verification| {
+        let (id, other_id) = (catalog.ids[row], catalog.ids[other]);
+        let dropped = |id| decisions.fate(id) == Some(Fate::Drop);
+        let moved = decisions
+            .split(id)
+            .is_some_and(|split| Some(split) != split_of(row));
+        Leak {
+            image: catalog.image_ref(row),
+            counterpart: catalog.image_ref(other),
+            tier,
+            similarity,
+            verification,
+            decided: dropped(id) || dropped(other_id) || moved,
+        }
     };
     // Exact matches need no judgement; the others become near candidates.
     let found: Vec<Result<LeakSearch, EngineError>> = rows
@@ -628,7 +680,9 @@ pub fn find_leaks_verified(
                         .get(&record.pixel_hash)
                         .map(|&other| (other, DuplicateTier::Pixels))
                 });
-            if let Some((other, tier)) = exact {
+            // A pair said to be distinct is left to the near search, which
+            // finds it again (cosine 1) and leaves it out, counted once.
+            if let Some((other, tier)) = exact.filter(|&(other, _)| !distinct(row, other)) {
                 return Ok(LeakSearch::Exact(leak(
                     row,
                     other,
@@ -666,6 +720,9 @@ pub fn find_leaks_verified(
             LeakSearch::Near(near) => candidates.extend(near),
         }
     }
+    let near_count = candidates.len();
+    candidates.retain(|c| !distinct(c.first, c.second));
+    let left_out_as_distinct = near_count - candidates.len();
     let (verdicts, verification) = judge(store, catalog, duplicates, verifier, &candidates)?;
     // Candidates are grouped by row in decreasing similarity: the first
     // accepted one of each row is its counterpart.
@@ -710,5 +767,6 @@ pub fn find_leaks_verified(
         summary,
         leaks,
         verification,
+        left_out_as_distinct,
     })
 }

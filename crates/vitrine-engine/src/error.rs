@@ -15,6 +15,18 @@ pub enum EngineError {
     Analytics(#[from] crate::analytics::AnalyticsError),
     #[error("cannot encode a note on a pair of files: {0}")]
     PairNoteEncoding(serde_json::Error),
+    #[error("cannot encode a decision: {0}")]
+    DecisionEncoding(serde_json::Error),
+    #[error("decision {number} in the store cannot be read: {message}")]
+    UnreadableDecision { number: u64, message: String },
+    #[error("{0}")]
+    InvalidDecision(String),
+    /// The person decided on a state that another decision has changed since.
+    #[error(
+        "another decision ({latest}) was recorded on these images after the one you saw \
+         ({seen}); look at the current state and decide again"
+    )]
+    DecisionConflict { seen: u64, latest: u64 },
     #[error("root {root} cannot be read: {message}")]
     UnreadableRoot { root: PathBuf, message: String },
     #[error("root {root} does not exist")]

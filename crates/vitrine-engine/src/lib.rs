@@ -7,6 +7,7 @@ pub mod analytics;
 pub mod calibrate;
 pub mod catalog;
 pub mod clusters;
+pub mod decisions;
 pub mod duplicates;
 pub mod error;
 pub mod ingest;

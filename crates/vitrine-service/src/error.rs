@@ -181,6 +181,10 @@ impl From<EngineError> for ApiError {
             EngineError::UnknownSplit { .. } => Self::bad_request("unknown_split", message),
             EngineError::UnknownLabel { .. } => Self::bad_request("unknown_label", message),
             EngineError::NoImageMatches(_) => Self::bad_request("no_image_matches", message),
+            EngineError::InvalidDecision(_) => Self::bad_request("invalid_decision", message),
+            EngineError::DecisionConflict { .. } => {
+                Self::new(StatusCode::CONFLICT, "decision_conflict", message)
+            }
             EngineError::ModelNotCollectionModel { .. } => {
                 Self::new(StatusCode::CONFLICT, "model_mismatch", message)
             }

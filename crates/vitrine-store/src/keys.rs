@@ -11,6 +11,7 @@
 //! | `t` + root (u32 BE)                   | root path, UTF-8              |
 //! | `f` + root (u32 BE) + rel_path        | postcard `FileError`          |
 //! | `n` + kind (8) + hash (32) + hash (32)| a note on two files' contents |
+//! | `d` + sequence number (u64 BE)        | a person's decision, opaque   |
 
 use crate::types::ImageId;
 
@@ -27,6 +28,11 @@ pub const CONTENT_HASH: u8 = b'h';
 pub const ROOT: u8 = b't';
 pub const FILE_ERROR: u8 = b'f';
 pub const PAIR_NOTE: u8 = b'n';
+pub const DECISION: u8 = b'd';
+
+pub fn decision(sequence: u64) -> [u8; 9] {
+    with_id(DECISION, sequence)
+}
 
 pub fn record(id: ImageId) -> [u8; 9] {
     with_id(RECORD, id)
@@ -43,7 +49,7 @@ fn with_id(prefix: u8, id: ImageId) -> [u8; 9] {
     key
 }
 
-/// The id in a `record`/`embedding` key, or `None` if the key is malformed.
+/// The number in a `record`, `embedding` or `decision` key, or `None` if the key is malformed.
 pub fn id_of(key: &[u8]) -> Option<ImageId> {
     let bytes: [u8; 8] = key.get(1..9)?.try_into().ok()?;
     (key.len() == 9).then(|| ImageId::from_be_bytes(bytes))

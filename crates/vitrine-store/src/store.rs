@@ -156,6 +156,51 @@ impl Store {
         self.db.apply_batch(batch).map_err(self.db_error())
     }
 
+    /// Appends a person's decision (bytes the caller encodes) to the collection's
+    /// decision log and returns its sequence number, counting from 1. Durable
+    /// when this returns; concurrent appends each get their own number. No
+    /// commit or index run touches the log.
+    pub fn append_decision(&self, decision: &[u8]) -> Result<u64, StoreError> {
+        loop {
+            let last = self
+                .db
+                .scan_prefix([keys::DECISION])
+                .next_back()
+                .transpose()
+                .map_err(self.db_error())?;
+            let next = match last {
+                None => 1,
+                Some((key, _)) => {
+                    keys::id_of(&key)
+                        .ok_or_else(|| self.corrupt(&key, "malformed decision key".into()))?
+                        + 1
+                }
+            };
+            let swapped = self
+                .db
+                .compare_and_swap(keys::decision(next), None as Option<&[u8]>, Some(decision))
+                .map_err(self.db_error())?;
+            // Another writer took this number first: take the next one.
+            if swapped.is_ok() {
+                self.db.flush().map_err(self.db_error())?;
+                return Ok(next);
+            }
+        }
+    }
+
+    /// The decision log, in the order the decisions were made.
+    pub fn decisions(&self) -> Result<Vec<(u64, Vec<u8>)>, StoreError> {
+        self.db
+            .scan_prefix([keys::DECISION])
+            .map(|entry| {
+                let (key, value) = entry.map_err(self.db_error())?;
+                let sequence = keys::id_of(&key)
+                    .ok_or_else(|| self.corrupt(&key, "malformed decision key".into()))?;
+                Ok((sequence, value.to_vec()))
+            })
+            .collect()
+    }
+
     /// Deletes the pair notes that name a file content no image has any more: a changed
     /// or removed file leaves its notes behind, which nothing would read again. Returns
     /// how many were deleted.

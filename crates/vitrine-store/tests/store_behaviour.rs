@@ -769,3 +769,32 @@ fn filter_may_search_the_same_store() {
         .count();
     assert!(shared >= K - 1, "{shared} of {K} shared");
 }
+
+#[test]
+fn concurrent_decisions_each_get_their_own_number_and_survive_reopening() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = Store::create_or_open(dir.path(), &fingerprint(DIM)).unwrap();
+    let numbers: Vec<u64> = (0..64u32)
+        .into_par_iter()
+        .map(|i| store.append_decision(&i.to_le_bytes()).unwrap())
+        .collect();
+    let mut sorted = numbers.clone();
+    sorted.sort_unstable();
+    assert_eq!(
+        sorted,
+        (1..=64).collect::<Vec<u64>>(),
+        "no number taken twice"
+    );
+    let log = store.decisions().unwrap();
+    drop(store);
+    let reopened = Store::open(dir.path()).unwrap();
+    assert_eq!(reopened.decisions().unwrap(), log);
+    for (i, number) in numbers.iter().enumerate() {
+        let (_, bytes) = &log[*number as usize - 1];
+        assert_eq!(
+            bytes,
+            &(i as u32).to_le_bytes(),
+            "decision {number} holds what was appended"
+        );
+    }
+}

@@ -1,0 +1,274 @@
+//! Decisions recorded through the real binary into a real store, fed back
+//! into the duplicate and leak reports, and exported as a clean training
+//! list that `index --manifest` reads back: re-indexing from it reports no
+//! leaks and no undecided duplicates. The expected training list is computed
+//! here from the folders themselves (the split/label folder convention the
+//! README documents), not from vitrine's output.
+
+mod common;
+
+use std::collections::BTreeSet;
+use std::path::Path;
+
+use common::{write_image, Fixture};
+use serde_json::Value;
+
+// The tiny test model's embeddings say nothing about pictures, so the
+// reports here judge by identical bytes and pixels alone.
+fn json(fx: &Fixture, args: &[&str]) -> Value {
+    let out = fx.run(&[args, &["--format", "json"]].concat());
+    assert!(
+        out.status.success(),
+        "{args:?}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    serde_json::from_slice(&out.stdout).unwrap()
+}
+
+fn ok(fx: &Fixture, args: &[&str]) -> String {
+    let out = fx.command(args).env("USER", "curator").output().unwrap();
+    assert!(
+        out.status.success(),
+        "{args:?}: {}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    String::from_utf8(out.stdout).unwrap()
+}
+
+fn refused(fx: &Fixture, args: &[&str]) -> String {
+    let out = fx.command(args).env("USER", "curator").output().unwrap();
+    assert!(!out.status.success(), "{args:?} was accepted");
+    String::from_utf8_lossy(&out.stderr).into_owned()
+}
+
+/// Every image file under `images` as `path,split,label` by the folder
+/// convention (`split/label/file`), minus `left_out`, with `relabelled` applied.
+fn expected_manifest(images: &Path, left_out: &[&str], relabelled: &[(&str, &str)]) -> String {
+    let mut rows = BTreeSet::new();
+    let mut stack = vec![images.to_path_buf()];
+    while let Some(dir) = stack.pop() {
+        for entry in std::fs::read_dir(&dir).unwrap() {
+            let path = entry.unwrap().path();
+            if path.is_dir() {
+                stack.push(path);
+                continue;
+            }
+            let rel = path
+                .strip_prefix(images)
+                .unwrap()
+                .to_str()
+                .unwrap()
+                .to_owned();
+            if left_out.contains(&rel.as_str()) {
+                continue;
+            }
+            let parts: Vec<&str> = rel.split('/').collect();
+            let (mut split, mut label) = match parts.as_slice() {
+                [split, label, _] => (split.to_string(), label.to_string()),
+                _ => (String::new(), String::new()),
+            };
+            if !["train", "val", "test"].contains(&split.as_str()) {
+                (split, label) = (String::new(), String::new());
+            }
+            if let Some((_, given)) = relabelled.iter().find(|(p, _)| *p == rel) {
+                label = given.to_string();
+            }
+            rows.insert(format!("{rel},{split},{label}"));
+        }
+    }
+    let mut text = String::from("path,split,label\n");
+    for row in rows {
+        text.push_str(&row);
+        text.push('\n');
+    }
+    text
+}
+
+#[test]
+fn decisions_settle_reports_and_the_exported_manifest_reindexes_clean() {
+    let fx = Fixture::new();
+    let images = fx.images();
+    for (i, place) in [
+        "train/cat/0.png",
+        "train/cat/1.png",
+        "train/dog/2.png",
+        "train/dog/3.png",
+        "val/cat/4.png",
+        "val/dog/5.png",
+        "test/cat/6.png",
+        "test/dog/7.png",
+        "unsorted/8.png",
+    ]
+    .iter()
+    .enumerate()
+    {
+        write_image(&images.join(place), i as u32);
+    }
+    // A copy inside train and a copy leaked into test, byte for byte.
+    std::fs::copy(
+        images.join("train/cat/0.png"),
+        images.join("train/dog/copy-of-0.png"),
+    )
+    .unwrap();
+    std::fs::copy(
+        images.join("train/cat/0.png"),
+        images.join("test/cat/leaked-0.png"),
+    )
+    .unwrap();
+    // The same pixels in another file format: a pixel-tier pair.
+    image::open(images.join("train/dog/3.png"))
+        .unwrap()
+        .save(images.join("train/dog/3.bmp"))
+        .unwrap();
+    fx.index();
+
+    let groups = json(&fx, &["duplicates", "--threshold", "1", "--no-verify"])["groups"]
+        .as_array()
+        .unwrap()
+        .clone();
+    assert_eq!(groups.len(), 2, "{groups:?}");
+    assert!(groups.iter().all(|g| g["decided"] == false));
+    let leaks = json(&fx, &["leaks", "--threshold", "1", "--no-verify"]);
+    assert_eq!(leaks["leaks"].as_array().unwrap().len(), 1, "{leaks}");
+    assert_eq!(leaks["leaks"][0]["decided"], false);
+
+    // Bad decisions are refused with a reason and record nothing.
+    assert!(refused(&fx, &["decide", "drop", "train/cat/nosuch.png"])
+        .contains("no indexed image has the path"));
+    assert!(
+        refused(&fx, &["decide", "split", "val/cat/4.png", "tset"]).contains("test, train, val")
+    );
+    assert!(refused(
+        &fx,
+        &[
+            "decide",
+            "distinct",
+            "train/cat/0.png",
+            "test/cat/leaked-0.png"
+        ]
+    )
+    .contains("same bytes"));
+    assert!(refused(&fx, &["decide", "undo"]).contains("no decision to undo"));
+    assert_eq!(json(&fx, &["decide", "list"]), Value::Array(Vec::new()));
+
+    let said = ok(
+        &fx,
+        &[
+            "decide",
+            "drop",
+            "train/dog/copy-of-0.png",
+            "test/cat/leaked-0.png",
+        ],
+    );
+    assert!(
+        said.contains("decision 1: drop train/dog/copy-of-0.png"),
+        "{said}"
+    );
+    assert!(
+        said.contains("decision 2: drop test/cat/leaked-0.png"),
+        "{said}"
+    );
+    ok(
+        &fx,
+        &["decide", "distinct", "train/dog/3.png", "train/dog/3.bmp"],
+    );
+    ok(&fx, &["decide", "label", "unsorted/8.png", "cat"]);
+    ok(&fx, &["decide", "split", "val/dog/5.png", "train"]);
+    // Taken back: the split stays as the folders say.
+    assert!(ok(&fx, &["decide", "undo"]).contains("decision 6: undo 5"));
+
+    let duplicates = json(&fx, &["duplicates", "--threshold", "1", "--no-verify"]);
+    let groups = duplicates["groups"].as_array().unwrap();
+    assert_eq!(
+        groups.len(),
+        1,
+        "the distinct pair is left out: {duplicates}"
+    );
+    assert_eq!(duplicates["left_out_as_distinct"], 1);
+    assert_eq!(groups[0]["decided"], true);
+    let leaks = json(&fx, &["leaks", "--threshold", "1", "--no-verify"]);
+    assert_eq!(leaks["leaks"][0]["decided"], true, "{leaks}");
+
+    let log = json(&fx, &["decide", "list"]);
+    let log = log.as_array().unwrap();
+    assert_eq!(log.len(), 6);
+    assert!(log.iter().all(|d| d["by"] == "curator"));
+    assert_eq!(log[4]["undone_by"], 6);
+    assert_eq!(log[0]["image"]["path"], "train/dog/copy-of-0.png");
+
+    // The exported list, against the folders.
+    let manifest = fx.dir.path().join("clean.csv");
+    ok(
+        &fx,
+        &[
+            "export",
+            "--format",
+            "manifest",
+            "--output",
+            manifest.to_str().unwrap(),
+        ],
+    );
+    let expected = expected_manifest(
+        &images,
+        &["train/dog/copy-of-0.png", "test/cat/leaked-0.png"],
+        &[("unsorted/8.png", "cat")],
+    );
+    assert_eq!(std::fs::read_to_string(&manifest).unwrap(), expected);
+    let audit = fx.dir.path().join("decisions.jsonl");
+    ok(
+        &fx,
+        &[
+            "export",
+            "--format",
+            "decisions-jsonl",
+            "--output",
+            audit.to_str().unwrap(),
+        ],
+    );
+    assert_eq!(std::fs::read_to_string(&audit).unwrap().lines().count(), 6);
+
+    // Re-indexed from the list: the decisions follow their files.
+    ok(
+        &fx,
+        &[
+            "index",
+            images.to_str().unwrap(),
+            "--manifest",
+            manifest.to_str().unwrap(),
+        ],
+    );
+    let leaks = json(&fx, &["leaks", "--threshold", "1", "--no-verify"]);
+    assert!(leaks["leaks"].as_array().unwrap().is_empty(), "{leaks}");
+    let duplicates = json(&fx, &["duplicates", "--threshold", "1", "--no-verify"]);
+    let groups = duplicates["groups"].as_array().unwrap();
+    assert!(groups.iter().all(|g| g["decided"] == true), "{duplicates}");
+    assert_eq!(duplicates["left_out_as_distinct"], 1);
+
+    // A file that changes after a decision: the decision is stale, not applied.
+    write_image(&images.join("test/cat/leaked-0.png"), 99);
+    ok(
+        &fx,
+        &[
+            "index",
+            images.to_str().unwrap(),
+            "--manifest",
+            manifest.to_str().unwrap(),
+        ],
+    );
+    let log = json(&fx, &["decide", "list"]);
+    assert_eq!(log[1]["stale"], true, "{log}");
+    assert_eq!(log[0]["stale"], false);
+    ok(
+        &fx,
+        &[
+            "export",
+            "--format",
+            "manifest",
+            "--output",
+            manifest.to_str().unwrap(),
+        ],
+    );
+    assert!(std::fs::read_to_string(&manifest)
+        .unwrap()
+        .contains("test/cat/leaked-0.png,,"));
+}
