@@ -32,8 +32,8 @@ use crate::collection::{self, Answers};
 use crate::output::{emit, Format, OutputArgs};
 use crate::progress::StderrProgress;
 use crate::reports::{
-    CalibrationTable, ClusterTable, DecisionTable, DuplicateTable, LeakTable, ManifestTable,
-    NeighbourTable, StatusTable, SuggestionTable, SuspectTable,
+    CalibrationTable, ClusterTable, DecisionTable, DuplicateTable, LeakTable, NeighbourTable,
+    StatusTable, SuggestionTable, SuspectTable,
 };
 use crate::session::{decode_options, embed_file, Session};
 use crate::settings::Settings;
@@ -323,12 +323,23 @@ fn export(ctx: &Session, format: ExportFormat, output: Option<PathBuf>) -> Resul
     let store = ctx.open_store()?;
     let catalog = Catalog::load(&store)?;
     let state = DecisionState::load(&store, &catalog)?;
-    let with_format = |format| OutputArgs { format, output };
+    let with_format = |format| OutputArgs {
+        format,
+        output: output.clone(),
+    };
     match format {
-        ExportFormat::Manifest => emit(
-            &ManifestTable(decisions::clean_manifest(&catalog, &state)),
-            &with_format(Format::Csv),
-        ),
+        ExportFormat::Manifest => {
+            let rows = decisions::clean_manifest(&catalog, &state);
+            match &output {
+                Some(path) => {
+                    let file = std::fs::File::create(path)
+                        .with_context(|| format!("cannot create {}", path.display()))?;
+                    decisions::write_manifest(&rows, std::io::BufWriter::new(file))?;
+                }
+                None => decisions::write_manifest(&rows, std::io::stdout().lock())?,
+            }
+            Ok(())
+        }
         ExportFormat::DecisionsCsv => emit(&DecisionTable(state.log), &with_format(Format::Csv)),
         ExportFormat::DecisionsJsonl => {
             emit(&DecisionTable(state.log), &with_format(Format::Jsonl))

@@ -4,7 +4,7 @@
 use anyhow::Result;
 use vitrine_engine::calibrate::{CalibrationReport, ThresholdPoint};
 use vitrine_engine::clusters::ClusterReport;
-use vitrine_engine::decisions::{Action, Fate, LoggedDecision, ManifestRow};
+use vitrine_engine::decisions::{Action, Fate, LoggedDecision};
 use vitrine_engine::duplicates::{DuplicateGroup, DuplicateReport, DuplicateTier, LeakReport};
 use vitrine_engine::labels::{
     LabelMethod, LabelSuggestion, LabelSuspect, SuggestionReport, SuspectReport,
@@ -573,28 +573,6 @@ impl Report for DecisionTable {
                     state,
                 ]
             })
-            .collect()
-    }
-}
-
-/// A training list in the `path,split,label` layout of `index --manifest`.
-pub struct ManifestTable(pub Vec<ManifestRow>);
-
-impl Report for ManifestTable {
-    type Item = ManifestRow;
-    fn document(&self) -> Result<serde_json::Value> {
-        Ok(serde_json::to_value(&self.0)?)
-    }
-    fn items(&self) -> Vec<&ManifestRow> {
-        self.0.iter().collect()
-    }
-    fn columns(&self) -> Vec<&'static str> {
-        vec!["path", "split", "label"]
-    }
-    fn rows(&self) -> Vec<Vec<String>> {
-        self.0
-            .iter()
-            .map(|row| vec![row.path.clone(), row.split.clone(), row.label.clone()])
             .collect()
     }
 }

@@ -10,8 +10,8 @@ mod common;
 use std::collections::BTreeSet;
 use std::path::Path;
 
-use common::{write_image, Fixture};
-use serde_json::Value;
+use common::{start_service, stop, write_image, Fixture};
+use serde_json::{json, Value};
 
 // The tiny test model's embeddings say nothing about pictures, so the
 // reports here judge by identical bytes and pixels alone.
@@ -84,8 +84,9 @@ fn expected_manifest(images: &Path, left_out: &[&str], relabelled: &[(&str, &str
     text
 }
 
-#[test]
-fn decisions_settle_reports_and_the_exported_manifest_reindexes_clean() {
+/// Labelled images in three splits, an unlabelled one, a byte copy inside
+/// train, a byte copy leaked into test, and one picture in two formats.
+fn collection_with_copies() -> Fixture {
     let fx = Fixture::new();
     let images = fx.images();
     for (i, place) in [
@@ -121,6 +122,13 @@ fn decisions_settle_reports_and_the_exported_manifest_reindexes_clean() {
         .save(images.join("train/dog/3.bmp"))
         .unwrap();
     fx.index();
+    fx
+}
+
+#[test]
+fn decisions_settle_reports_and_the_exported_manifest_reindexes_clean() {
+    let fx = collection_with_copies();
+    let images = fx.images();
 
     let groups = json(&fx, &["duplicates", "--threshold", "1", "--no-verify"])["groups"]
         .as_array()
@@ -271,4 +279,183 @@ fn decisions_settle_reports_and_the_exported_manifest_reindexes_clean() {
     assert!(std::fs::read_to_string(&manifest)
         .unwrap()
         .contains("test/cat/leaked-0.png,,"));
+}
+
+/// Sends a decision to the service; the status and the JSON answer.
+fn post(url: &str, key: Option<&str>, origin: Option<&str>, body: Value) -> (u16, Value) {
+    let mut request = ureq::post(url);
+    if let Some(key) = key {
+        request = request.set("X-Vitrine-Page-Key", key);
+    }
+    if let Some(origin) = origin {
+        request = request.set("Origin", origin);
+    }
+    match request.send_json(body) {
+        Ok(response) => (response.status(), response.into_json().unwrap()),
+        Err(ureq::Error::Status(status, response)) => (status, response.into_json().unwrap()),
+        Err(err) => panic!("{url}: {err}"),
+    }
+}
+
+fn get(url: &str) -> Value {
+    ureq::get(url).call().unwrap().into_json().unwrap()
+}
+
+#[test]
+fn decisions_over_http_are_guarded_race_free_and_durable() {
+    let fx = collection_with_copies();
+    let (service, url) = start_service(&fx);
+    let api = format!("{url}/api/v1/collections/store");
+    let decide = format!("{api}/decisions");
+    let key = get(&format!("{url}/api/v1/page-key"))["key"]
+        .as_str()
+        .unwrap()
+        .to_owned();
+    let drop_leak = json!({"action": "drop", "path": "test/cat/leaked-0.png"});
+
+    // Without a token: only with this process's page key, and from a browser
+    // only from this server's own origin.
+    let (status, body) = post(&decide, None, None, drop_leak.clone());
+    assert_eq!(
+        (status, body["error"]["code"].as_str()),
+        (403, Some("page_key_required"))
+    );
+    let (status, body) = post(
+        &decide,
+        Some(&key),
+        Some("http://elsewhere.example"),
+        drop_leak.clone(),
+    );
+    assert_eq!(
+        (status, body["error"]["code"].as_str()),
+        (403, Some("foreign_origin"))
+    );
+    let (status, body) = post(&decide, Some(&key), Some(&url), drop_leak.clone());
+    assert_eq!(status, 201, "{body}");
+    assert_eq!(
+        (body["number"].as_u64(), body["by"].as_str()),
+        (Some(1), Some("page"))
+    );
+
+    // Bad requests: a clear 4xx, nothing recorded.
+    for (bad, code) in [
+        (
+            json!({"action": "drop", "path": "nosuch.png"}),
+            "unknown_path",
+        ),
+        (
+            json!({"action": "split", "path": "val/cat/4.png", "split": "tset"}),
+            "unknown_split",
+        ),
+        (
+            json!({"action": "undo", "decision": 99}),
+            "invalid_decision",
+        ),
+        (
+            json!({"action": "shred", "path": "val/cat/4.png"}),
+            "invalid_json",
+        ),
+    ] {
+        let (status, body) = post(&decide, Some(&key), None, bad.clone());
+        assert!((400..500).contains(&status), "{bad} answered {status}");
+        assert_eq!(body["error"]["code"], code, "{bad}: {body}");
+    }
+
+    // Reviewers racing on one image: exactly one decision is taken, the others
+    // are told what changed. Racing on different images: none is lost.
+    let outcomes: Vec<u16> = std::thread::scope(|scope| {
+        let workers: Vec<_> = (0..6)
+            .map(|i| {
+                let (decide, key) = (&decide, &key);
+                scope.spawn(move || {
+                    let action = if i % 2 == 0 { "drop" } else { "keep" };
+                    let body =
+                        json!({"action": action, "path": "train/dog/copy-of-0.png", "seen": 0});
+                    post(decide, Some(key), None, body).0
+                })
+            })
+            .collect();
+        workers.into_iter().map(|w| w.join().unwrap()).collect()
+    });
+    assert_eq!(
+        outcomes.iter().filter(|&&s| s == 201).count(),
+        1,
+        "{outcomes:?}"
+    );
+    assert_eq!(
+        outcomes.iter().filter(|&&s| s == 409).count(),
+        5,
+        "{outcomes:?}"
+    );
+    let paths = [
+        "train/cat/1.png",
+        "train/dog/2.png",
+        "val/cat/4.png",
+        "val/dog/5.png",
+    ];
+    std::thread::scope(|scope| {
+        for path in paths {
+            let (decide, key) = (&decide, &key);
+            scope.spawn(move || {
+                let (status, body) = post(
+                    decide,
+                    Some(key),
+                    None,
+                    json!({"action": "keep", "path": path, "seen": 0}),
+                );
+                assert_eq!(status, 201, "{body}");
+            });
+        }
+    });
+    let log = get(&decide);
+    assert_eq!(log["decisions"].as_array().unwrap().len(), 6, "{log}");
+    assert_eq!(
+        log["counts"]["kept"].as_u64().unwrap() + log["counts"]["dropped"].as_u64().unwrap(),
+        6
+    );
+
+    // The reports see the decisions at once.
+    let leaks = get(&format!("{api}/leaks?verify=false&threshold=1"));
+    assert_eq!(
+        (leaks["decided"].as_u64(), leaks["total"].as_u64()),
+        (Some(1), Some(1)),
+        "{leaks}"
+    );
+    let open = get(&format!(
+        "{api}/leaks?verify=false&threshold=1&undecided=true"
+    ));
+    assert_eq!(open["total"], 0, "{open}");
+
+    // The page's download equals the command's export.
+    let served_manifest = ureq::get(&format!("{api}/manifest"))
+        .call()
+        .unwrap()
+        .into_string()
+        .unwrap();
+
+    // A kill right after acknowledged decisions loses none of them.
+    let mut service = service;
+    service.kill().unwrap();
+    service.wait().unwrap();
+    let listed = json(&fx, &["decide", "list"]);
+    assert_eq!(listed.as_array().unwrap().len(), 6);
+    let exported = fx.dir.path().join("list.csv");
+    ok(
+        &fx,
+        &[
+            "export",
+            "--format",
+            "manifest",
+            "--output",
+            exported.to_str().unwrap(),
+        ],
+    );
+    assert_eq!(std::fs::read_to_string(&exported).unwrap(), served_manifest);
+    let (service, url) = start_service(&fx);
+    let log = get(&format!("{url}/api/v1/collections/store/decisions"));
+    assert_eq!(
+        log["decisions"], listed,
+        "the restarted service reads the same log"
+    );
+    stop(service);
 }

@@ -7,11 +7,7 @@
 
 mod common;
 
-use std::io::{BufRead, BufReader};
-use std::process::{Child, Command, Stdio};
-use std::time::{Duration, Instant};
-
-use common::{write_image, Fixture};
+use common::{start_service, stop, write_image, Fixture};
 use serde_json::Value;
 
 /// Every read command of the command line, with JSON output.
@@ -75,40 +71,6 @@ fn indexed_collection() -> Fixture {
     fx
 }
 
-/// `vitrine serve` on an ephemeral loopback port; returns once it listens.
-fn start_service(fx: &Fixture) -> Child {
-    let mut child = fx
-        .command(&["serve", "--port", "0", "--bind", "127.0.0.1"])
-        .stdout(Stdio::piped())
-        .stderr(Stdio::null())
-        .spawn()
-        .unwrap();
-    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
-    let listening = lines.next().expect("the service printed nothing").unwrap();
-    assert!(
-        listening.starts_with("vitrine serves on http://127.0.0.1:"),
-        "{listening}"
-    );
-    child
-}
-
-fn stop(mut service: Child) {
-    let pid = service.id().to_string();
-    assert!(Command::new("kill")
-        .args(["-TERM", &pid])
-        .status()
-        .unwrap()
-        .success());
-    let started = Instant::now();
-    while service.try_wait().unwrap().is_none() {
-        assert!(
-            started.elapsed() < Duration::from_secs(60),
-            "the service did not stop"
-        );
-        std::thread::sleep(Duration::from_millis(50));
-    }
-}
-
 #[test]
 fn read_commands_answer_through_the_service_exactly_as_from_the_store() {
     let fx = indexed_collection();
@@ -128,7 +90,7 @@ fn read_commands_answer_through_the_service_exactly_as_from_the_store() {
         direct[4]
     );
 
-    let service = start_service(&fx);
+    let (service, _) = start_service(&fx);
     let record: Value = serde_json::from_slice(
         &std::fs::read(fx.store().join("served-by.json")).expect("the service recorded itself"),
     )
@@ -173,7 +135,7 @@ fn read_commands_answer_through_the_service_exactly_as_from_the_store() {
 #[test]
 fn a_record_left_by_a_killed_service_does_not_stand_in_the_way() {
     let fx = indexed_collection();
-    let mut service = start_service(&fx);
+    let (mut service, _) = start_service(&fx);
     service.kill().unwrap();
     service.wait().unwrap();
     assert!(fx.store().join("served-by.json").exists());

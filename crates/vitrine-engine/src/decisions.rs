@@ -446,3 +446,21 @@ pub fn clean_manifest(catalog: &Catalog, state: &DecisionState) -> Vec<ManifestR
     rows.sort_by(|a, b| a.path.cmp(&b.path));
     rows
 }
+
+/// Writes a training list as CSV with the header `path,split,label`.
+pub fn write_manifest(rows: &[ManifestRow], out: impl std::io::Write) -> Result<(), EngineError> {
+    let mut writer = csv::WriterBuilder::new()
+        .has_headers(false)
+        .from_writer(out);
+    writer
+        .write_record(["path", "split", "label"])
+        .map_err(EngineError::ManifestWrite)?;
+    for row in rows {
+        writer
+            .write_record([&row.path, &row.split, &row.label])
+            .map_err(EngineError::ManifestWrite)?;
+    }
+    writer
+        .flush()
+        .map_err(|err| EngineError::ManifestWrite(err.into()))
+}

@@ -15,6 +15,8 @@ pub enum EngineError {
     Analytics(#[from] crate::analytics::AnalyticsError),
     #[error("cannot encode a note on a pair of files: {0}")]
     PairNoteEncoding(serde_json::Error),
+    #[error("cannot write the training list: {0}")]
+    ManifestWrite(csv::Error),
     #[error("cannot encode a decision: {0}")]
     DecisionEncoding(serde_json::Error),
     #[error("decision {number} in the store cannot be read: {message}")]

@@ -22,6 +22,7 @@ use serde::Serialize;
 use utoipa::ToSchema;
 use vitrine_engine::catalog::{dot, Catalog};
 use vitrine_engine::clusters::{ClusterOptions, ClusterReport};
+use vitrine_engine::decisions::{self, Action, LoggedDecision};
 use vitrine_engine::duplicates::{DuplicateOptions, DuplicateReport, LeakOptions, LeakReport};
 use vitrine_engine::labels::{LabelOptions, SuggestionReport, SuspectReport};
 use vitrine_engine::neighbours::{
@@ -33,6 +34,9 @@ use vitrine_model::encoder::Encoder;
 use vitrine_store::{FileError, ImageId, ModelFingerprint, Store};
 
 use crate::error::ApiError;
+
+/// How long recording a decision waits for an index job to release the store.
+const BUSY_WAIT_FOR_DECISIONS: Duration = Duration::from_secs(5);
 
 /// Everything readers need about a collection at one committed state.
 pub struct Snapshot {
@@ -129,10 +133,15 @@ pub struct Collection {
     store: RwLock<Store>,
     snapshot: RwLock<Arc<Snapshot>>,
     generations: AtomicU64,
-    /// Duplicate reports by their options.
-    pub duplicates: Memo<DuplicateOptions, DuplicateReport>,
-    /// Leak reports by their options.
-    pub leaks: Memo<LeakOptions, LeakReport>,
+    /// Duplicate reports by their options and the decisions they saw.
+    pub duplicates: Memo<(DuplicateOptions, u64), DuplicateReport>,
+    /// Leak reports by their options and the decisions they saw.
+    pub leaks: Memo<(LeakOptions, u64), LeakReport>,
+    /// Counts recorded decisions, so that reports made before one are not served after it.
+    decisions_recorded: AtomicU64,
+    /// Held while a decision is checked against the log and appended, so that
+    /// two reviewers deciding on one item cannot both pass the check.
+    decision_writes: Mutex<()>,
     /// Lives as long as the collection, so that pair verdicts outlast one
     /// query: another threshold or a new generation re-checks only new pairs.
     verifier: OnceLock<Arc<PairVerifier>>,
@@ -160,6 +169,8 @@ impl Collection {
             generations: AtomicU64::new(0),
             duplicates: Memo::default(),
             leaks: Memo::default(),
+            decisions_recorded: AtomicU64::new(0),
+            decision_writes: Mutex::new(()),
             verifier: OnceLock::new(),
             verification_stopped: AtomicBool::new(false),
             precomputed: AtomicU8::new(0),
@@ -201,6 +212,27 @@ impl Collection {
 
     pub fn verification_stopped(&self) -> bool {
         self.verification_stopped.load(Ordering::SeqCst)
+    }
+
+    /// How many decisions this service has recorded: part of the memo keys of
+    /// the reports that decisions change.
+    pub fn decisions_recorded(&self) -> u64 {
+        self.decisions_recorded.load(Ordering::SeqCst)
+    }
+
+    /// Checks and appends a decision (see [`decisions::record`]), one at a time.
+    pub fn record_decision(
+        &self,
+        by: &str,
+        action: Action,
+        seen: Option<u64>,
+    ) -> Result<LoggedDecision, ApiError> {
+        let _one_at_a_time = self.decision_writes.lock();
+        let recorded = self.with_store(BUSY_WAIT_FOR_DECISIONS, |store, snapshot| {
+            decisions::record(store, &snapshot.catalog, by, action, seen).map_err(ApiError::from)
+        })?;
+        self.decisions_recorded.fetch_add(1, Ordering::SeqCst);
+        Ok(recorded)
     }
 
     /// The current snapshot; cheap.

@@ -14,6 +14,8 @@ use vitrine_store::StoreError;
 /// Why the service could not start.
 #[derive(Debug, thiserror::Error)]
 pub enum ServiceError {
+    #[error("cannot draw the page key from the operating system's random source: {0}")]
+    PageKey(String),
     #[error("refusing to listen on {bind}: only loopback addresses are allowed without a token (set VITRINE_TOKEN or [serve] token)")]
     PublicBindWithoutToken { bind: String },
     #[error("cannot listen on {bind}: {source}")]

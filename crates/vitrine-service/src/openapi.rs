@@ -3,7 +3,9 @@
 use utoipa::openapi::security::{HttpAuthScheme, HttpBuilder, SecurityScheme};
 use utoipa::{Modify, OpenApi};
 
-use crate::api::{analyses, clusters, collections, images, jobs, labels, reports, search, system};
+use crate::api::{
+    analyses, clusters, collections, decisions, images, jobs, labels, reports, search, system,
+};
 
 /// The versioned API, nested under `/api/v1`.
 #[derive(OpenApi)]
@@ -25,6 +27,10 @@ use crate::api::{analyses, clusters, collections, images, jobs, labels, reports,
     labels::suggestions,
     labels::suspects,
     reports::report,
+    decisions::page_key,
+    decisions::list,
+    decisions::record,
+    decisions::manifest,
     jobs::rescan,
     jobs::recluster,
     jobs::status,
@@ -42,7 +48,8 @@ struct V1Api;
     modifiers(&BearerToken),
     tags(
         (name = "collections"), (name = "images"), (name = "search"), (name = "analyses"),
-        (name = "clusters"), (name = "labels"), (name = "jobs"), (name = "system"),
+        (name = "clusters"), (name = "labels"), (name = "decisions"), (name = "jobs"),
+        (name = "system"),
     )
 )]
 pub struct ApiDoc;

@@ -47,6 +47,10 @@ pub struct ServiceConfig {
 pub struct AppState {
     pub settings: ServeSettings,
     pub token: Option<String>,
+    /// A secret of this process that the page sends with its writes when no
+    /// token is configured (see `api::decision_author`); other web sites
+    /// cannot read it.
+    pub page_key: String,
     pub collections: BTreeMap<String, Arc<Collection>>,
     pub model: Model,
     pub index: IndexOptions,
@@ -108,8 +112,11 @@ impl AppState {
             target_shorter_side: None,
         };
         let background = Arc::new(background_pool().map_err(ServiceError::BackgroundThreads)?);
+        let mut key = [0u8; 16];
+        getrandom::fill(&mut key).map_err(|err| ServiceError::PageKey(err.to_string()))?;
         Ok(Self {
             token: settings.effective_token(),
+            page_key: hex::encode(key),
             jobs: Arc::new(Jobs::new(settings.heavy_jobs, background.clone())),
             background,
             thumbnails: Thumbnails::new(settings.thumbnail_cache_entries),

@@ -6,8 +6,10 @@
 // Each test binary uses its own part of this module.
 #![allow(dead_code)]
 
+use std::io::{BufRead, BufReader};
 use std::path::{Path, PathBuf};
-use std::process::{Command, Output};
+use std::process::{Child, Command, Output, Stdio};
+use std::time::{Duration, Instant};
 
 use image::{ImageBuffer, Rgb};
 use serde_json::Value;
@@ -112,4 +114,42 @@ pub fn write_image(path: &Path, seed: u32) {
         ])
     });
     image.save(path).unwrap();
+}
+
+/// `vitrine serve` on an ephemeral loopback port; returns once it listens,
+/// with its address.
+pub fn start_service(fx: &Fixture) -> (Child, String) {
+    let mut child = fx
+        .command(&["serve", "--port", "0", "--bind", "127.0.0.1"])
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let mut lines = BufReader::new(child.stdout.take().unwrap()).lines();
+    let listening = lines.next().expect("the service printed nothing").unwrap();
+    let url = listening
+        .strip_prefix("vitrine serves on ")
+        .and_then(|url| url.strip_suffix('/'))
+        .filter(|url| url.starts_with("http://127.0.0.1:"))
+        .unwrap_or_else(|| panic!("unexpected first line: {listening}"))
+        .to_owned();
+    (child, url)
+}
+
+/// Stops the service gracefully (SIGTERM) and waits for it.
+pub fn stop(mut service: Child) {
+    let pid = service.id().to_string();
+    assert!(Command::new("kill")
+        .args(["-TERM", &pid])
+        .status()
+        .unwrap()
+        .success());
+    let started = Instant::now();
+    while service.try_wait().unwrap().is_none() {
+        assert!(
+            started.elapsed() < Duration::from_secs(60),
+            "the service did not stop"
+        );
+        std::thread::sleep(Duration::from_millis(50));
+    }
 }

@@ -6,6 +6,7 @@ use std::sync::Arc;
 use serde::{Deserialize, Serialize};
 use utoipa::{IntoParams, ToSchema};
 use vitrine_engine::catalog::ImageRef;
+use vitrine_engine::decisions::Fate;
 use vitrine_engine::duplicates::{
     find_duplicates, find_leaks_verified, DuplicateGroup, DuplicateOptions, DuplicateReport,
     DuplicateTier, Leak, LeakOptions, LeakReport, SplitLeakSummary, Verification,
@@ -150,6 +151,9 @@ pub struct GroupMember {
     pub width: u32,
     pub height: u32,
     pub byte_size: u64,
+    /// What a person decided for this image: `keep`, `drop` or null.
+    #[schema(value_type = Option<String>)]
+    pub decision: Option<Fate>,
 }
 
 #[derive(Debug, Serialize, ToSchema)]
@@ -158,6 +162,8 @@ pub struct DuplicateGroupBody {
     pub tier: Tier,
     /// The keeper first, then the others by decreasing similarity.
     pub members: Vec<GroupMember>,
+    /// A person has settled the group: every member decided, or all but one dropped.
+    pub decided: bool,
 }
 
 impl From<&DuplicateGroup> for DuplicateGroupBody {
@@ -181,8 +187,10 @@ impl From<&DuplicateGroup> for DuplicateGroupBody {
                     width: m.width,
                     height: m.height,
                     byte_size: m.byte_size,
+                    decision: m.decision,
                 })
                 .collect(),
+            decided: group.decided,
         }
     }
 }
@@ -199,6 +207,8 @@ pub struct DuplicateParams {
     /// With verification: the cosine similarity from which pairs are checked
     /// (confirmed pairs are accepted even below `threshold`).
     pub candidate_threshold: Option<f32>,
+    /// Only the groups a person has not settled yet.
+    pub undecided: Option<bool>,
     pub page: Option<usize>,
     pub per_page: Option<usize>,
 }
@@ -210,8 +220,12 @@ pub struct DuplicatesPage {
     pub verification: VerificationBody,
     /// Largest groups first.
     pub groups: Vec<DuplicateGroupBody>,
-    /// Groups in all pages.
+    /// Groups in all pages (after the `undecided` filter).
     pub total: usize,
+    /// Groups a person has settled, of all groups.
+    pub decided: usize,
+    /// Pairs left out because a person decided they are not copies.
+    pub left_out_as_distinct: usize,
     pub page: usize,
     pub per_page: usize,
 }
@@ -281,10 +295,14 @@ pub(crate) fn duplicate_report(
     collection.with_store(BUSY_WAIT, |store, snapshot| {
         collection
             .duplicates
-            .get_or_try(snapshot.generation, options.clone(), || {
-                let verifier = verifier_for(state, collection, snapshot, options);
-                find_duplicates(store, &snapshot.catalog, options, verifier.as_deref())
-            })
+            .get_or_try(
+                snapshot.generation,
+                (options.clone(), collection.decisions_recorded()),
+                || {
+                    let verifier = verifier_for(state, collection, snapshot, options);
+                    find_duplicates(store, &snapshot.catalog, options, verifier.as_deref())
+                },
+            )
             .map_err(ApiError::from)
     })
 }
@@ -300,10 +318,14 @@ pub(crate) fn leak_report(
     collection.with_store(BUSY_WAIT, |store, snapshot| {
         collection
             .leaks
-            .get_or_try(snapshot.generation, options.clone(), || {
-                let verifier = verifier_for(state, collection, snapshot, near);
-                find_leaks_verified(store, &snapshot.catalog, options, verifier.as_deref())
-            })
+            .get_or_try(
+                snapshot.generation,
+                (options.clone(), collection.decisions_recorded()),
+                || {
+                    let verifier = verifier_for(state, collection, snapshot, near);
+                    find_leaks_verified(store, &snapshot.catalog, options, verifier.as_deref())
+                },
+            )
             .map_err(ApiError::from)
     })
 }
@@ -394,16 +416,23 @@ pub async fn duplicates(
     let threshold = options.near_duplicate_threshold;
     let candidate_threshold = options.candidate_threshold;
     let report = blocking(move || duplicate_report(&state, &collection, &options)).await?;
-    let groups = &report.groups;
+    let undecided = query.undecided.unwrap_or(false);
+    let groups: Vec<&DuplicateGroup> = report
+        .groups
+        .iter()
+        .filter(|group| !(undecided && group.decided))
+        .collect();
     Ok(HttpResponse::Ok().json(DuplicatesPage {
         threshold,
         candidate_threshold,
         verification: (&report.verification).into(),
         groups: groups[window.range(groups.len())]
             .iter()
-            .map(DuplicateGroupBody::from)
+            .map(|group| DuplicateGroupBody::from(*group))
             .collect(),
         total: groups.len(),
+        decided: report.groups.iter().filter(|g| g.decided).count(),
+        left_out_as_distinct: report.left_out_as_distinct,
         page: window.page,
         per_page: window.per_page,
     }))
@@ -418,6 +447,8 @@ pub struct LeakParams {
     pub candidate_threshold: Option<f32>,
     /// Splits to check, comma-separated (default: every split but the reference).
     pub split: Option<String>,
+    /// Only the leaks a person has not settled yet.
+    pub undecided: Option<bool>,
     /// The reference split others are checked against (default from the configuration, usually `train`).
     pub against: Option<String>,
     /// Cosine similarity at or above which images are near-duplicates.
@@ -459,6 +490,8 @@ pub struct LeakBody {
     pub similarity: f32,
     /// For near-tier leaks: how the pair was judged.
     pub check: Option<PairJudgement>,
+    /// A person has settled the leak: one side dropped, or the image moved to another split.
+    pub decided: bool,
 }
 
 impl From<&Leak> for LeakBody {
@@ -473,6 +506,7 @@ impl From<&Leak> for LeakBody {
             tier: leak.tier.into(),
             similarity: leak.similarity,
             check: leak.verification.map(PairJudgement::from),
+            decided: leak.decided,
         }
     }
 }
@@ -485,8 +519,12 @@ pub struct LeaksPage {
     pub verification: VerificationBody,
     pub summary: Vec<SplitLeaks>,
     pub leaks: Vec<LeakBody>,
-    /// Leaks in all pages.
+    /// Leaks in all pages (after the `undecided` filter).
     pub total: usize,
+    /// Leaks a person has settled, of all leaks.
+    pub decided: usize,
+    /// Pairs left out because a person decided they are not copies.
+    pub left_out_as_distinct: usize,
     pub page: usize,
     pub per_page: usize,
 }
@@ -539,17 +577,25 @@ pub async fn leaks(
     let threshold = options.duplicates.near_duplicate_threshold;
     let candidate_threshold = options.duplicates.candidate_threshold;
     let report = blocking(move || leak_report(&state, &collection, &options)).await?;
+    let undecided = query.undecided.unwrap_or(false);
+    let shown: Vec<&Leak> = report
+        .leaks
+        .iter()
+        .filter(|leak| !(undecided && leak.decided))
+        .collect();
     Ok(HttpResponse::Ok().json(LeaksPage {
         reference_split: report.reference_split.clone(),
         threshold,
         candidate_threshold,
         verification: (&report.verification).into(),
         summary: report.summary.iter().map(SplitLeaks::from).collect(),
-        leaks: report.leaks[window.range(report.leaks.len())]
+        leaks: shown[window.range(shown.len())]
             .iter()
-            .map(LeakBody::from)
+            .map(|leak| LeakBody::from(*leak))
             .collect(),
-        total: report.leaks.len(),
+        total: shown.len(),
+        decided: report.leaks.iter().filter(|l| l.decided).count(),
+        left_out_as_distinct: report.left_out_as_distinct,
         page: window.page,
         per_page: window.per_page,
     }))

@@ -3,6 +3,7 @@
 pub mod analyses;
 pub mod clusters;
 pub mod collections;
+pub mod decisions;
 pub mod images;
 pub mod jobs;
 pub mod labels;
@@ -44,6 +45,10 @@ pub fn configure(cfg: &mut web::ServiceConfig) {
             .service(labels::suggestions)
             .service(labels::suspects)
             .service(reports::report)
+            .service(decisions::page_key)
+            .service(decisions::list)
+            .service(decisions::record)
+            .service(decisions::manifest)
             .service(jobs::rescan)
             .service(jobs::recluster)
             .service(jobs::status),
