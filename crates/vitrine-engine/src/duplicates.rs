@@ -150,6 +150,9 @@ pub struct GroupMember {
     /// What a person decided for this image.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub decision: Option<Fate>,
+    /// The number of the latest decision in effect on this image (0: none):
+    /// what a reviewer passes as `seen` when deciding on it.
+    pub last_decision: u64,
 }
 
 /// A group of images that are copies of one picture.
@@ -500,6 +503,7 @@ fn build_group(
                 height: record.height,
                 byte_size: record.byte_size,
                 decision: decisions.fate(catalog.ids[row]),
+                last_decision: decisions.latest_on(&[catalog.ids[row]], catalog),
             }
         })
         .collect();
@@ -535,6 +539,10 @@ pub struct Leak {
     /// A person has settled the leak: one side dropped, or the image given
     /// another split.
     pub decided: bool,
+    /// The latest decision in effect on the image and on its counterpart (0:
+    /// none): what a reviewer passes as `seen`.
+    pub image_last_decision: u64,
+    pub counterpart_last_decision: u64,
 }
 
 /// Leak counts of one evaluated split.
@@ -665,6 +673,8 @@ pub fn find_leaks_verified(
             similarity,
             verification,
             decided: dropped(id) || dropped(other_id) || moved,
+            image_last_decision: decisions.latest_on(&[id], catalog),
+            counterpart_last_decision: decisions.latest_on(&[other_id], catalog),
         }
     };
     // Exact matches need no judgement; the others become near candidates.

@@ -154,6 +154,9 @@ pub struct GroupMember {
     /// What a person decided for this image: `keep`, `drop` or null.
     #[schema(value_type = Option<String>)]
     pub decision: Option<Fate>,
+    /// The latest decision in effect on this image (0: none): send it as
+    /// `seen` when deciding on it.
+    pub last_decision: u64,
 }
 
 #[derive(Debug, Serialize, ToSchema)]
@@ -188,6 +191,7 @@ impl From<&DuplicateGroup> for DuplicateGroupBody {
                     height: m.height,
                     byte_size: m.byte_size,
                     decision: m.decision,
+                    last_decision: m.last_decision,
                 })
                 .collect(),
             decided: group.decided,
@@ -492,6 +496,10 @@ pub struct LeakBody {
     pub check: Option<PairJudgement>,
     /// A person has settled the leak: one side dropped, or the image moved to another split.
     pub decided: bool,
+    /// The latest decision in effect on the image and on its counterpart (0:
+    /// none): send the one decided on (the larger for both) as `seen`.
+    pub image_last_decision: u64,
+    pub counterpart_last_decision: u64,
 }
 
 impl From<&Leak> for LeakBody {
@@ -507,6 +515,8 @@ impl From<&Leak> for LeakBody {
             similarity: leak.similarity,
             check: leak.verification.map(PairJudgement::from),
             decided: leak.decided,
+            image_last_decision: leak.image_last_decision,
+            counterpart_last_decision: leak.counterpart_last_decision,
         }
     }
 }
