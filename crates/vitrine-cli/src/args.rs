@@ -124,7 +124,8 @@ pub enum Command {
 #[derive(Subcommand, Debug)]
 pub enum DecideCommand {
     /// Leave these images out of the training list (paths relative to their
-    /// root, as reports print them).
+    /// root, as reports print them; one decision per path, recorded in order,
+    /// stopping at the first path that is refused).
     Drop {
         #[arg(required = true, value_name = "PATH")]
         paths: Vec<String>,

@@ -3,6 +3,7 @@
 //! engine reports with the same options (`POST …/reports`), so a command
 //! prints the same answer either way.
 
+use std::io::Read;
 use std::path::Path;
 use std::time::{Duration, Instant};
 
@@ -10,6 +11,7 @@ use anyhow::{anyhow, bail, Context, Result};
 use serde::de::DeserializeOwned;
 use vitrine_engine::catalog::Catalog;
 use vitrine_engine::clusters::{cluster_collection, ClusterOptions, ClusterReport};
+use vitrine_engine::decisions::{self, DecisionState, LoggedDecision, Request};
 use vitrine_engine::duplicates::{
     find_duplicates, find_leaks_verified, DuplicateOptions, DuplicateReport, LeakOptions,
     LeakReport,
@@ -25,8 +27,8 @@ use vitrine_store::{Store, StoreError};
 
 use crate::session::Session;
 
-/// The read-only questions of the command line.
-pub trait Answers {
+/// What the command line asks of a collection, and the decisions it records.
+pub trait Collection {
     fn status(&self, list_errors: bool) -> Result<CollectionStatus>;
     fn neighbours(
         &self,
@@ -39,15 +41,21 @@ pub trait Answers {
     fn clusters(&self, options: &ClusterOptions) -> Result<ClusterReport>;
     fn label_suggestions(&self, options: &LabelOptions) -> Result<SuggestionReport>;
     fn label_suspects(&self, options: &LabelOptions) -> Result<SuspectReport>;
+    /// Checks and records a person's decision (durable when this returns).
+    fn decide(&self, by: &str, request: Request) -> Result<LoggedDecision>;
+    /// The decision log, in the order the decisions were made.
+    fn decisions(&self) -> Result<Vec<LoggedDecision>>;
+    /// The clean training list as CSV `path,split,label`.
+    fn manifest_csv(&self) -> Result<Vec<u8>>;
 }
 
 /// The collection of `--store`: opened here, or reached through the service
 /// that holds it.
-pub fn open(session: &Session) -> Result<Box<dyn Answers + '_>> {
+pub fn open(session: &Session) -> Result<Box<dyn Collection + '_>> {
     let dir = &session.global.store;
     // Asked first: opening a store that is in use waits for its lock.
     if let Some(served) = ServedBy::read(dir)? {
-        let service = ServedCollection::new(served);
+        let service = ServedCollection::new(served, session.settings.serve.effective_token());
         if service.answers() {
             eprintln!(
                 "note: the service at {} holds this store; asking it (process {})",
@@ -72,7 +80,7 @@ pub fn opening_failed(dir: &Path, err: StoreError) -> anyhow::Error {
         StoreError::InUse { .. } => ServedBy::read(dir)
             .ok()
             .flatten()
-            .filter(|served| ServedCollection::new(served.clone()).answers()),
+            .filter(|served| ServedCollection::new(served.clone(), None).answers()),
         _ => None,
     };
     match served {
@@ -107,7 +115,7 @@ impl<'a> LocalCollection<'a> {
     }
 }
 
-impl Answers for LocalCollection<'_> {
+impl Collection for LocalCollection<'_> {
     fn status(&self, list_errors: bool) -> Result<CollectionStatus> {
         let errors = self.store.errors()?;
         Ok(CollectionStatus::new(
@@ -171,6 +179,28 @@ impl Answers for LocalCollection<'_> {
     fn label_suspects(&self, options: &LabelOptions) -> Result<SuspectReport> {
         Ok(find_label_suspects(&self.store, &self.catalog, options)?)
     }
+
+    fn decide(&self, by: &str, request: Request) -> Result<LoggedDecision> {
+        let action = request.resolve(&self.catalog)?;
+        Ok(decisions::record(
+            &self.store,
+            &self.catalog,
+            by,
+            action,
+            None,
+        )?)
+    }
+
+    fn decisions(&self) -> Result<Vec<LoggedDecision>> {
+        Ok(DecisionState::load(&self.store, &self.catalog)?.log)
+    }
+
+    fn manifest_csv(&self) -> Result<Vec<u8>> {
+        let state = DecisionState::load(&self.store, &self.catalog)?;
+        let mut csv = Vec::new();
+        decisions::write_manifest(&decisions::clean_manifest(&self.catalog, &state), &mut csv)?;
+        Ok(csv)
+    }
 }
 
 /// How long a command keeps asking a service that is still computing (it
@@ -181,12 +211,15 @@ const PATIENCE: Duration = Duration::from_secs(3600);
 struct ServedCollection {
     served: ServedBy,
     agent: ureq::Agent,
+    /// The service's write token, when the configuration or `$VITRINE_TOKEN` has one.
+    token: Option<String>,
 }
 
 impl ServedCollection {
-    fn new(served: ServedBy) -> Self {
+    fn new(served: ServedBy, token: Option<String>) -> Self {
         Self {
             served,
+            token,
             agent: ureq::AgentBuilder::new()
                 .timeout_connect(Duration::from_secs(5))
                 .build(),
@@ -202,40 +235,66 @@ impl ServedCollection {
             .is_ok()
     }
 
-    fn ask<T: DeserializeOwned>(&self, question: &Question) -> Result<T> {
-        let url = format!(
-            "{}/api/v1/collections/{}/reports",
+    /// The address of `suffix` under this collection's API path.
+    fn api(&self, suffix: &str) -> String {
+        format!(
+            "{}/api/v1/collections/{}{suffix}",
             self.served.url, self.served.collection
-        );
+        )
+    }
+
+    fn get<T: DeserializeOwned>(&self, url: &str) -> Result<T> {
+        self.answer(self.agent.get(url).call())
+    }
+
+    /// The response of a call that succeeded, else the service's error in its own words.
+    fn success(&self, outcome: Result<ureq::Response, ureq::Error>) -> Result<ureq::Response> {
+        match outcome {
+            Ok(response) => Ok(response),
+            Err(ureq::Error::Status(status, response)) => {
+                let (_, message) = error_of(response);
+                bail!(
+                    "{message} (answered by the service at {}, {status})",
+                    self.served.url
+                )
+            }
+            Err(ureq::Error::Transport(transport)) => bail!(
+                "the service at {} (process {}) that holds this store stopped answering: \
+                 {transport}",
+                self.served.url,
+                self.served.pid
+            ),
+        }
+    }
+
+    fn answer<T: DeserializeOwned>(
+        &self,
+        outcome: Result<ureq::Response, ureq::Error>,
+    ) -> Result<T> {
+        self.success(outcome)?.into_json().with_context(|| {
+            format!(
+                "the service at {} sent an unreadable answer",
+                self.served.url
+            )
+        })
+    }
+
+    fn ask<T: DeserializeOwned>(&self, question: &Question) -> Result<T> {
+        let url = self.api("/reports");
         let started = Instant::now();
         loop {
             match self.agent.post(&url).send_json(question) {
-                Ok(response) => {
-                    return response.into_json().with_context(|| {
-                        format!(
-                            "the service at {} sent an unreadable report",
-                            self.served.url
-                        )
-                    })
-                }
-                Err(ureq::Error::Status(status, response)) => {
+                Err(ureq::Error::Status(503, response)) if started.elapsed() < PATIENCE => {
                     let (code, message) = error_of(response);
-                    let retry = matches!(code.as_str(), "request_timeout" | "collection_busy");
-                    if retry && started.elapsed() < PATIENCE {
-                        eprintln!("note: {message}; asking again");
-                        continue;
+                    if !matches!(code.as_str(), "request_timeout" | "collection_busy") {
+                        bail!(
+                            "{message} (answered by the service at {}, 503)",
+                            self.served.url
+                        );
                     }
-                    bail!(
-                        "{message} (answered by the service at {}, {status})",
-                        self.served.url
-                    );
+                    eprintln!("note: {message}; asking again");
                 }
-                Err(ureq::Error::Transport(transport)) => bail!(
-                    "the service at {} (process {}) that holds this store stopped answering: \
-                     {transport}",
-                    self.served.url,
-                    self.served.pid
-                ),
+                outcome => return self.answer(outcome),
             }
         }
     }
@@ -256,7 +315,7 @@ fn error_of(response: ureq::Response) -> (String, String) {
     }
 }
 
-impl Answers for ServedCollection {
+impl Collection for ServedCollection {
     fn status(&self, list_errors: bool) -> Result<CollectionStatus> {
         self.ask(&Question::Status { list_errors })
     }
@@ -292,5 +351,44 @@ impl Answers for ServedCollection {
 
     fn label_suspects(&self, options: &LabelOptions) -> Result<SuspectReport> {
         self.ask(&Question::LabelSuspects(options.clone()))
+    }
+
+    fn decide(&self, by: &str, request: Request) -> Result<LoggedDecision> {
+        let mut body = serde_json::to_value(&request)?;
+        body["by"] = by.into();
+        let url = self.api("/decisions");
+        let call = match &self.token {
+            Some(token) => self
+                .agent
+                .post(&url)
+                .set("Authorization", &format!("Bearer {token}")),
+            None => {
+                let key: serde_json::Value =
+                    self.get(&format!("{}/api/v1/page-key", self.served.url))?;
+                let key = key["key"]
+                    .as_str()
+                    .context("the service sent no page key")?;
+                self.agent.post(&url).set("X-Vitrine-Page-Key", key)
+            }
+        };
+        self.answer(call.send_json(body))
+    }
+
+    fn decisions(&self) -> Result<Vec<LoggedDecision>> {
+        #[derive(serde::Deserialize)]
+        struct Log {
+            decisions: Vec<LoggedDecision>,
+        }
+        Ok(self.get::<Log>(&self.api("/decisions"))?.decisions)
+    }
+
+    fn manifest_csv(&self) -> Result<Vec<u8>> {
+        let response = self.agent.get(&self.api("/manifest")).call();
+        let mut csv = Vec::new();
+        self.success(response)?
+            .into_reader()
+            .read_to_end(&mut csv)
+            .with_context(|| format!("while reading the training list from {}", self.served.url))?;
+        Ok(csv)
     }
 }

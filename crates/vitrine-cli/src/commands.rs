@@ -10,7 +10,7 @@ use serde::Serialize;
 use vitrine_engine::calibrate::{calibrate, CalibrationOptions};
 use vitrine_engine::catalog::Catalog;
 use vitrine_engine::clusters::ClusterOptions;
-use vitrine_engine::decisions::{self, Action, DecisionState};
+use vitrine_engine::decisions::{self, Request};
 use vitrine_engine::duplicates::LeakOptions;
 use vitrine_engine::ingest::{fingerprint_of, index_roots, resolve_roots, IndexOptions};
 use vitrine_engine::labels::LabelOptions;
@@ -28,7 +28,7 @@ use crate::args::{
     Cli, Command, DecideCommand, ExportFormat, ImportArgs, IndexArgs, LabelCommand, ModelCommand,
     NormalisationArg, PoolingArg, ServeArgs, SimilarArgs, ThresholdArgs,
 };
-use crate::collection::{self, Answers};
+use crate::collection::{self, Collection};
 use crate::output::{emit, Format, OutputArgs};
 use crate::progress::StderrProgress;
 use crate::reports::{
@@ -236,7 +236,7 @@ fn similar(ctx: &Session, args: &SimilarArgs) -> Result<()> {
 
 /// The embedding of a file from outside the collection, made by the
 /// collection's own model.
-fn outside_query(ctx: &Session, collection: &dyn Answers, file: &Path) -> Result<Vec<f32>> {
+fn outside_query(ctx: &Session, collection: &dyn Collection, file: &Path) -> Result<Vec<f32>> {
     let encoder = ctx.encoder()?;
     let stored = collection.status(false)?.model;
     let loaded = fingerprint_of(&encoder).to_string();
@@ -247,62 +247,38 @@ fn outside_query(ctx: &Session, collection: &dyn Answers, file: &Path) -> Result
 }
 
 fn decide(ctx: &Session, command: DecideCommand) -> Result<()> {
-    let store = ctx.open_store()?;
-    let catalog = Catalog::load(&store)?;
-    let file = |path: &str| decisions::file_ref(&catalog, path);
-    let (actions, who) = match command {
+    let collection = collection::open(ctx)?;
+    let (requests, who) = match command {
         DecideCommand::List { output } => {
-            let state = DecisionState::load(&store, &catalog)?;
-            return emit(&DecisionTable(state.log), &output);
+            return emit(&DecisionTable(collection.decisions()?), &output);
         }
         DecideCommand::Drop { paths, who } => (
             paths
-                .iter()
-                .map(|path| Ok(Action::Drop { image: file(path)? }))
-                .collect::<Result<Vec<_>>>()?,
+                .into_iter()
+                .map(|path| Request::Drop { path })
+                .collect(),
             who,
         ),
         DecideCommand::Keep { paths, who } => (
             paths
-                .iter()
-                .map(|path| Ok(Action::Keep { image: file(path)? }))
-                .collect::<Result<Vec<_>>>()?,
+                .into_iter()
+                .map(|path| Request::Keep { path })
+                .collect(),
             who,
         ),
-        DecideCommand::Distinct { first, second, who } => (
-            vec![Action::Distinct {
-                first: file(&first)?,
-                second: file(&second)?,
-            }],
-            who,
-        ),
-        DecideCommand::Label { path, label, who } => (
-            vec![Action::Label {
-                image: file(&path)?,
-                label,
-            }],
-            who,
-        ),
-        DecideCommand::Reject { path, who } => (
-            vec![Action::RejectSuggestion {
-                image: file(&path)?,
-            }],
-            who,
-        ),
-        DecideCommand::Split { path, split, who } => (
-            vec![Action::Split {
-                image: file(&path)?,
-                split,
-            }],
-            who,
-        ),
+        DecideCommand::Distinct { first, second, who } => {
+            (vec![Request::Distinct { first, second }], who)
+        }
+        DecideCommand::Label { path, label, who } => (vec![Request::Label { path, label }], who),
+        DecideCommand::Reject { path, who } => (vec![Request::RejectSuggestion { path }], who),
+        DecideCommand::Split { path, split, who } => (vec![Request::Split { path, split }], who),
         DecideCommand::Undo { number, who } => {
             let decision = match number {
                 Some(number) => number,
-                None => decisions::last_undoable(&DecisionState::load(&store, &catalog)?)
+                None => decisions::last_undoable(&collection.decisions()?)
                     .context("there is no decision to undo")?,
             };
-            (vec![Action::Undo { decision }], who)
+            (vec![Request::Undo { decision }], who)
         }
     };
     let by = match who.by {
@@ -311,8 +287,8 @@ fn decide(ctx: &Session, command: DecideCommand) -> Result<()> {
             .or_else(|_| std::env::var("USERNAME"))
             .context("no user name in $USER; say who decides with --by NAME")?,
     };
-    for action in actions {
-        let recorded = decisions::record(&store, &catalog, &by, action, None)?;
+    for request in requests {
+        let recorded = collection.decide(&by, request)?;
         let [name, subject, detail] = crate::reports::action_cells(&recorded.decision.action);
         println!("decision {}: {name} {subject} {detail}", recorded.number);
     }
@@ -320,30 +296,29 @@ fn decide(ctx: &Session, command: DecideCommand) -> Result<()> {
 }
 
 fn export(ctx: &Session, format: ExportFormat, output: Option<PathBuf>) -> Result<()> {
-    let store = ctx.open_store()?;
-    let catalog = Catalog::load(&store)?;
-    let state = DecisionState::load(&store, &catalog)?;
+    let collection = collection::open(ctx)?;
     let with_format = |format| OutputArgs {
         format,
         output: output.clone(),
     };
     match format {
         ExportFormat::Manifest => {
-            let rows = decisions::clean_manifest(&catalog, &state);
+            let csv = collection.manifest_csv()?;
             match &output {
-                Some(path) => {
-                    let file = std::fs::File::create(path)
-                        .with_context(|| format!("cannot create {}", path.display()))?;
-                    decisions::write_manifest(&rows, std::io::BufWriter::new(file))?;
-                }
-                None => decisions::write_manifest(&rows, std::io::stdout().lock())?,
+                Some(path) => std::fs::write(path, csv)
+                    .with_context(|| format!("cannot write {}", path.display()))?,
+                None => std::io::stdout().lock().write_all(&csv)?,
             }
             Ok(())
         }
-        ExportFormat::DecisionsCsv => emit(&DecisionTable(state.log), &with_format(Format::Csv)),
-        ExportFormat::DecisionsJsonl => {
-            emit(&DecisionTable(state.log), &with_format(Format::Jsonl))
-        }
+        ExportFormat::DecisionsCsv => emit(
+            &DecisionTable(collection.decisions()?),
+            &with_format(Format::Csv),
+        ),
+        ExportFormat::DecisionsJsonl => emit(
+            &DecisionTable(collection.decisions()?),
+            &with_format(Format::Jsonl),
+        ),
     }
 }
 

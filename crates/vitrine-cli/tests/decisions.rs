@@ -426,19 +426,39 @@ fn decisions_over_http_are_guarded_race_free_and_durable() {
     ));
     assert_eq!(open["total"], 0, "{open}");
 
-    // The page's download equals the command's export.
+    // The command line decides and exports through the running service.
+    let said = ok(&fx, &["decide", "drop", "unsorted/8.png"]);
+    assert!(said.contains("decision 7: drop unsorted/8.png"), "{said}");
+    let log = get(&decide);
+    assert_eq!(log["decisions"][6]["by"], "curator", "{log}");
     let served_manifest = ureq::get(&format!("{api}/manifest"))
         .call()
         .unwrap()
         .into_string()
         .unwrap();
+    assert!(!served_manifest.contains("unsorted/8.png"));
+    let through_service = fx.dir.path().join("through-service.csv");
+    ok(
+        &fx,
+        &[
+            "export",
+            "--format",
+            "manifest",
+            "--output",
+            through_service.to_str().unwrap(),
+        ],
+    );
+    assert_eq!(
+        std::fs::read_to_string(&through_service).unwrap(),
+        served_manifest
+    );
 
     // A kill right after acknowledged decisions loses none of them.
     let mut service = service;
     service.kill().unwrap();
     service.wait().unwrap();
     let listed = json(&fx, &["decide", "list"]);
-    assert_eq!(listed.as_array().unwrap().len(), 6);
+    assert_eq!(listed.as_array().unwrap().len(), 7);
     let exported = fx.dir.path().join("list.csv");
     ok(
         &fx,

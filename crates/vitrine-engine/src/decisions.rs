@@ -62,6 +62,52 @@ impl Action {
     }
 }
 
+/// A decision as a person asks for it, naming images by their root-relative
+/// paths as reports print them; [`Request::resolve`] turns it into an
+/// [`Action`] on the collection's current files. Both front ends take it:
+/// the command line's arguments and the API's request body.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(tag = "action", rename_all = "snake_case")]
+pub enum Request {
+    Drop { path: String },
+    Keep { path: String },
+    Distinct { first: String, second: String },
+    Label { path: String, label: String },
+    RejectSuggestion { path: String },
+    Split { path: String, split: String },
+    Undo { decision: u64 },
+}
+
+impl Request {
+    pub fn resolve(self, catalog: &Catalog) -> Result<Action, EngineError> {
+        let file = |path: &str| file_ref(catalog, path);
+        Ok(match self {
+            Self::Drop { path } => Action::Drop {
+                image: file(&path)?,
+            },
+            Self::Keep { path } => Action::Keep {
+                image: file(&path)?,
+            },
+            Self::Distinct { first, second } => Action::Distinct {
+                first: file(&first)?,
+                second: file(&second)?,
+            },
+            Self::Label { path, label } => Action::Label {
+                image: file(&path)?,
+                label,
+            },
+            Self::RejectSuggestion { path } => Action::RejectSuggestion {
+                image: file(&path)?,
+            },
+            Self::Split { path, split } => Action::Split {
+                image: file(&path)?,
+                split,
+            },
+            Self::Undo { decision } => Action::Undo { decision },
+        })
+    }
+}
+
 /// One decision as the log keeps it.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Decision {
@@ -401,11 +447,10 @@ pub fn record(
     })
 }
 
-/// The latest decision in effect that can be undone (for "undo the last").
-pub fn last_undoable(state: &DecisionState) -> Option<u64> {
-    state
-        .log
-        .iter()
+/// The latest decision of `log` still in effect that can be undone (for
+/// "undo the last").
+pub fn last_undoable(log: &[LoggedDecision]) -> Option<u64> {
+    log.iter()
         .rev()
         .find(|d| d.undone_by.is_none() && !matches!(d.decision.action, Action::Undo { .. }))
         .map(|d| d.number)

@@ -600,7 +600,7 @@ pub fn find_leaks(
 /// What the search for one evaluated image's leak found.
 enum LeakSearch {
     /// A reference image with the same bytes or pixels: a leak without judgement.
-    Exact(Leak),
+    Exact(Box<Leak>),
     /// Reference images close enough to be judged, best first.
     Near(Vec<Candidate>),
 }
@@ -693,13 +693,13 @@ pub fn find_leaks_verified(
             // A pair said to be distinct is left to the near search, which
             // finds it again (cosine 1) and leaves it out, counted once.
             if let Some((other, tier)) = exact.filter(|&(other, _)| !distinct(row, other)) {
-                return Ok(LeakSearch::Exact(leak(
+                return Ok(LeakSearch::Exact(Box::new(leak(
                     row,
                     other,
                     tier,
                     catalog.similarity(row, other),
                     None,
-                )));
+                ))));
             }
             let depth = if floor < duplicates.near_duplicate_threshold {
                 duplicates.neighbours_per_image.max(1)
@@ -726,7 +726,7 @@ pub fn find_leaks_verified(
     let mut candidates = Vec::new();
     for outcome in found {
         match outcome? {
-            LeakSearch::Exact(exact) => leaks.push(exact),
+            LeakSearch::Exact(exact) => leaks.push(*exact),
             LeakSearch::Near(near) => candidates.extend(near),
         }
     }

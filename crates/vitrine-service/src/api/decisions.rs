@@ -5,73 +5,27 @@ use actix_web::http::header;
 use actix_web::{get, post, web, HttpRequest, HttpResponse};
 use serde::{Deserialize, Serialize};
 use utoipa::ToSchema;
-use vitrine_engine::catalog::Catalog;
-use vitrine_engine::decisions::{self, Action, DecisionCounts, DecisionState, LoggedDecision};
+use vitrine_engine::decisions::{self, DecisionCounts, DecisionState, LoggedDecision, Request};
 
 use super::{authorise, blocking, State};
 use crate::error::{ApiError, ErrorBody};
 use crate::state::{AppState, BUSY_WAIT};
 
-/// What to decide, naming images by their root-relative paths as reports print them.
-#[derive(Debug, Deserialize, ToSchema)]
-#[serde(tag = "action", rename_all = "snake_case")]
-pub enum DecisionRequest {
-    /// Leave the image out of the training list.
-    Drop { path: String },
-    /// Keep the image (a group's keeper; a leak judged harmless).
-    Keep { path: String },
-    /// The two images are not copies: later reports leave the pair out.
-    Distinct { first: String, second: String },
-    /// Give the image a label (accept a suggestion, correct a mislabel, confirm its label).
-    Label { path: String, label: String },
-    /// Turn down the label suggested for the image.
-    RejectSuggestion { path: String },
-    /// Put the image into another split of the training list.
-    Split { path: String, split: String },
-    /// Take back decision number `decision`.
-    Undo { decision: u64 },
-}
-
 #[derive(Debug, Deserialize, ToSchema)]
 pub struct DecisionBody {
+    /// `action` and what it names, by root-relative paths as reports print
+    /// them: `drop` / `keep` (`path`), `distinct` (`first`, `second`: not
+    /// copies), `label` (`path`, `label`), `reject_suggestion` (`path`),
+    /// `split` (`path`, `split`), `undo` (`decision`: its number).
     #[serde(flatten)]
-    pub request: DecisionRequest,
+    #[schema(value_type = Object)]
+    pub request: Request,
     /// The latest decision number on these images that you saw (0: none).
     /// When another decision was recorded on them since, nothing is recorded
     /// and the answer is 409.
     pub seen: Option<u64>,
     /// Who decides (default: `token` with the bearer token, `page` from the page).
     pub by: Option<String>,
-}
-
-impl DecisionRequest {
-    fn action(self, catalog: &Catalog) -> Result<Action, ApiError> {
-        let file = |path: &str| decisions::file_ref(catalog, path).map_err(ApiError::from);
-        Ok(match self {
-            Self::Drop { path } => Action::Drop {
-                image: file(&path)?,
-            },
-            Self::Keep { path } => Action::Keep {
-                image: file(&path)?,
-            },
-            Self::Distinct { first, second } => Action::Distinct {
-                first: file(&first)?,
-                second: file(&second)?,
-            },
-            Self::Label { path, label } => Action::Label {
-                image: file(&path)?,
-                label,
-            },
-            Self::RejectSuggestion { path } => Action::RejectSuggestion {
-                image: file(&path)?,
-            },
-            Self::Split { path, split } => Action::Split {
-                image: file(&path)?,
-                split,
-            },
-            Self::Undo { decision } => Action::Undo { decision },
-        })
-    }
 }
 
 /// Who may record a decision, and under which name. With a token, the bearer
@@ -229,7 +183,7 @@ pub async fn record(
     let DecisionBody { request, seen, by } = body.into_inner();
     let by = decision_author(&req, &state, by)?;
     let recorded = blocking(move || {
-        let action = request.action(&collection.snapshot().catalog)?;
+        let action = request.resolve(&collection.snapshot().catalog)?;
         collection.record_decision(&by, action, seen)
     })
     .await?;
