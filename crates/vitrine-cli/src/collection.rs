@@ -125,6 +125,7 @@ impl Collection for LocalCollection<'_> {
                 fingerprint: self.store.fingerprint(),
                 roots: &self.store.roots(),
                 index_disk_bytes: self.store.index_disk_bytes(),
+                decisions: DecisionState::load(&self.store, &self.catalog)?.counts(),
             },
             list_errors,
         ))

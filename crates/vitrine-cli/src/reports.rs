@@ -78,6 +78,20 @@ impl Report for StatusTable {
             .map(|(s, n)| format!("{s} {n}"))
             .collect();
         lines.push(format!("splits: {}", splits.join(", ")));
+        let decisions = &self.0.decisions;
+        if decisions.in_effect + decisions.undone + decisions.stale > 0 {
+            lines.push(format!(
+                "decisions: {} in effect ({} dropped, {} kept, {} pairs not copies, {} labels, {} splits given), {} undone, {} stale",
+                decisions.in_effect,
+                decisions.dropped,
+                decisions.kept,
+                decisions.distinct_pairs,
+                decisions.labels_given,
+                decisions.splits_given,
+                decisions.undone,
+                decisions.stale
+            ));
+        }
         lines.push(String::new());
         lines
     }

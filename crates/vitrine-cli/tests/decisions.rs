@@ -197,6 +197,19 @@ fn decisions_settle_reports_and_the_exported_manifest_reindexes_clean() {
     let leaks = json(&fx, &["leaks", "--threshold", "1", "--no-verify"]);
     assert_eq!(leaks["leaks"][0]["decided"], true, "{leaks}");
 
+    let counts = &json(&fx, &["status"])["decisions"];
+    assert_eq!(counts["in_effect"], 4, "{counts}");
+    assert_eq!(
+        (
+            counts["dropped"].as_u64(),
+            counts["distinct_pairs"].as_u64()
+        ),
+        (Some(2), Some(1))
+    );
+    assert_eq!(
+        (counts["labels_given"].as_u64(), counts["undone"].as_u64()),
+        (Some(1), Some(1))
+    );
     let log = json(&fx, &["decide", "list"]);
     let log = log.as_array().unwrap();
     assert_eq!(log.len(), 6);

@@ -8,6 +8,7 @@ use serde::{Deserialize, Serialize};
 use vitrine_store::{FileError, ModelFingerprint};
 
 use crate::catalog::Catalog;
+use crate::decisions::DecisionCounts;
 
 #[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct CollectionStatus {
@@ -25,6 +26,9 @@ pub struct CollectionStatus {
     /// Keyed `split/label`; `(none)` stands for a missing split or label.
     pub labels: BTreeMap<String, usize>,
     pub index_disk_bytes: u64,
+    /// What people decided: copies confirmed by dropping one side, reported
+    /// pairs overturned as not copies, labels and splits given.
+    pub decisions: DecisionCounts,
     /// Only when asked for (see [`CollectionStatus::new`]).
     #[serde(default, skip_serializing_if = "Vec::is_empty")]
     pub error_list: Vec<ErrorLine>,
@@ -45,6 +49,7 @@ pub struct StatusSource<'a> {
     pub fingerprint: &'a ModelFingerprint,
     pub roots: &'a [(u32, PathBuf)],
     pub index_disk_bytes: u64,
+    pub decisions: DecisionCounts,
 }
 
 impl CollectionStatus {
@@ -84,6 +89,7 @@ impl CollectionStatus {
             splits,
             labels,
             index_disk_bytes: source.index_disk_bytes,
+            decisions: source.decisions.clone(),
             error_list: if list_errors {
                 source
                     .errors

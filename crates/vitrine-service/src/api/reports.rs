@@ -4,6 +4,7 @@
 
 use actix_web::{post, web, HttpResponse};
 use serde::Serialize;
+use vitrine_engine::decisions::DecisionState;
 use vitrine_engine::duplicates::{DuplicateOptions, LeakOptions};
 use vitrine_engine::labels::LabelOptions;
 use vitrine_engine::questions::{NeighbourQuery, Question};
@@ -15,7 +16,7 @@ use super::labels::{suggestion_report, suspect_report, LabelParams};
 use super::{blocking, checked_k, State};
 use crate::collection::Query;
 use crate::error::{ApiError, ErrorBody};
-use crate::state::AppState;
+use crate::state::{AppState, BUSY_WAIT};
 
 /// One whole report, in the engine's own format (the one `vitrine … --format
 /// json` prints): the body names the question and its options, for example
@@ -44,16 +45,22 @@ pub async fn report(
     let body = blocking(move || {
         let snapshot = collection.snapshot();
         match question {
-            Question::Status { list_errors } => json(&CollectionStatus::new(
-                &StatusSource {
-                    catalog: &snapshot.catalog,
-                    errors: &snapshot.errors,
-                    fingerprint: &snapshot.fingerprint,
-                    roots: &snapshot.roots,
-                    index_disk_bytes: snapshot.index_disk_bytes,
-                },
-                list_errors,
-            )),
+            Question::Status { list_errors } => {
+                collection.with_store(BUSY_WAIT, |store, snapshot| {
+                    let decisions = DecisionState::load(store, &snapshot.catalog)?.counts();
+                    json(&CollectionStatus::new(
+                        &StatusSource {
+                            catalog: &snapshot.catalog,
+                            errors: &snapshot.errors,
+                            fingerprint: &snapshot.fingerprint,
+                            roots: &snapshot.roots,
+                            index_disk_bytes: snapshot.index_disk_bytes,
+                            decisions,
+                        },
+                        list_errors,
+                    ))
+                })
+            }
             Question::Neighbours { of, k, filter } => {
                 let neighbours = match &of {
                     NeighbourQuery::Image(id) => collection.nearest(Query::Image(*id), k, &filter),
