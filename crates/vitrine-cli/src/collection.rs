@@ -3,6 +3,7 @@
 //! engine reports with the same options (`POST …/reports`), so a command
 //! prints the same answer either way.
 
+use std::cell::RefCell;
 use std::io::Read;
 use std::path::Path;
 use std::time::{Duration, Instant};
@@ -102,6 +103,8 @@ struct LocalCollection<'a> {
     session: &'a Session,
     store: Store,
     catalog: Catalog,
+    /// The decision log, replayed once for all the decisions of one command.
+    decisions: RefCell<Option<DecisionState>>,
 }
 
 impl<'a> LocalCollection<'a> {
@@ -111,6 +114,7 @@ impl<'a> LocalCollection<'a> {
             session,
             store,
             catalog,
+            decisions: RefCell::new(None),
         })
     }
 }
@@ -183,9 +187,15 @@ impl Collection for LocalCollection<'_> {
 
     fn decide(&self, by: &str, request: Request) -> Result<LoggedDecision> {
         let action = request.resolve(&self.catalog)?;
+        let mut state = self.decisions.borrow_mut();
+        let state = match &mut *state {
+            Some(state) => state,
+            empty => empty.insert(DecisionState::load(&self.store, &self.catalog)?),
+        };
         Ok(decisions::record(
             &self.store,
             &self.catalog,
+            state,
             by,
             action,
             None,

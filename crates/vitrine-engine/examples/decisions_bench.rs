@@ -107,7 +107,7 @@ fn main() {
         .map(|a| a.parse().expect("IMAGES and DECISIONS are counts"))
         .collect();
     let images = args.first().copied().unwrap_or(100_000);
-    let decisions_wanted = args.get(1).copied().unwrap_or(1_000);
+    let decisions_wanted = args.get(1).copied().unwrap_or(4_000);
     let mut rng = ChaCha8Rng::seed_from_u64(7);
     let dir = tempfile::tempdir().expect("temporary folder");
 
@@ -122,6 +122,8 @@ fn main() {
     // Each decision as a reviewer makes it: a path from a report, checked
     // against the decision number the reviewer saw (known from the report,
     // so looked up outside the timing), then appended durably.
+    // The log is replayed once, as the service does, and kept up to date.
+    let mut state = DecisionState::load(&store, &catalog).expect("log");
     let mut record_ms = Vec::with_capacity(decisions_wanted);
     for n in 0..decisions_wanted {
         let row = rng.random_range(0..images);
@@ -137,12 +139,10 @@ fn main() {
         } else {
             Request::Drop { path }
         };
-        let seen = DecisionState::load(&store, &catalog)
-            .expect("log")
-            .latest_on(&[catalog.ids[row]], &catalog);
+        let seen = state.latest_on(&[catalog.ids[row]], &catalog);
         let started = Instant::now();
         let action = request.resolve(&catalog).expect("known paths");
-        match decisions::record(&store, &catalog, "bench", action, Some(seen)) {
+        match decisions::record(&store, &catalog, &mut state, "bench", action, Some(seen)) {
             // A distinct pair's second image may carry decisions: a conflict
             // is an answer too.
             Ok(_) | Err(vitrine_engine::EngineError::DecisionConflict { .. }) => {}
@@ -150,7 +150,6 @@ fn main() {
         }
         record_ms.push(millis(started));
     }
-    let state = DecisionState::load(&store, &catalog).expect("log");
     let mut export_ms = Vec::new();
     let mut bytes = 0;
     for _ in 0..5 {

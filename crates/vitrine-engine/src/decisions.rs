@@ -301,6 +301,18 @@ impl DecisionState {
         state
     }
 
+    /// Takes in a decision just appended to the log. Replays the log in
+    /// memory: an undo can bring back what an earlier decision said.
+    fn push(&mut self, decision: LoggedDecision, catalog: &Catalog) {
+        let mut log = std::mem::take(&mut self.log);
+        for entry in &mut log {
+            entry.undone_by = None;
+            entry.stale = false;
+        }
+        log.push(decision);
+        *self = Self::from_log(log, catalog);
+    }
+
     pub fn fate(&self, id: ImageId) -> Option<Fate> {
         self.fates.get(&id).map(|(fate, _)| *fate)
     }
@@ -368,7 +380,9 @@ fn now_unix_s() -> i64 {
         .map_or(0, |d| d.as_secs() as i64)
 }
 
-/// Checks `action` against the collection and the log and appends it.
+/// Checks `action` against the collection and the log (`state`, loaded
+/// from `store` for `catalog`) and appends it, keeping `state` up to date, so
+/// that a front end recording many decisions replays the log once.
 ///
 /// `seen` is the number of the latest decision on the action's images that
 /// the person saw (0: none); when another decision was recorded on them
@@ -376,11 +390,11 @@ fn now_unix_s() -> i64 {
 pub fn record(
     store: &Store,
     catalog: &Catalog,
+    state: &mut DecisionState,
     by: &str,
     action: Action,
     seen: Option<u64>,
 ) -> Result<LoggedDecision, EngineError> {
-    let state = DecisionState::load(store, catalog)?;
     let invalid = |message: String| EngineError::InvalidDecision(message);
     match &action {
         Action::Undo { decision } => {
@@ -439,12 +453,14 @@ pub fn record(
     };
     let bytes = serde_json::to_vec(&decision).map_err(EngineError::DecisionEncoding)?;
     let number = store.append_decision(&bytes)?;
-    Ok(LoggedDecision {
+    let recorded = LoggedDecision {
         number,
         decision,
         undone_by: None,
         stale: false,
-    })
+    };
+    state.push(recorded.clone(), catalog);
+    Ok(recorded)
 }
 
 /// The latest decision of `log` still in effect that can be undone (for
@@ -508,4 +524,140 @@ pub fn write_manifest(rows: &[ManifestRow], out: impl std::io::Write) -> Result<
     writer
         .flush()
         .map_err(|err| EngineError::ManifestWrite(err.into()))
+}
+
+#[cfg(test)]
+mod tests {
+    use std::path::Path;
+
+    use vitrine_store::{ChangeSet, ModelFingerprint, Upsert};
+
+    use super::*;
+
+    /// A real store with images `a.png`, `b.png`, `c.png` whose contents are
+    /// distinct, and `copy.png` with the bytes of `a.png`.
+    fn store_with_four(dir: &Path) -> (Store, Catalog) {
+        let fingerprint = ModelFingerprint {
+            model_id: "unit".into(),
+            weights_sha256: "0".repeat(64),
+            preprocess: "none".into(),
+            pooling: "cls".into(),
+            dim: 2,
+        };
+        let mut store = Store::create_or_open(dir, &fingerprint).unwrap();
+        store.add_root(Path::new("/photos")).unwrap();
+        let upserts = [("a.png", 1u8), ("b.png", 2), ("c.png", 3), ("copy.png", 1)]
+            .iter()
+            .enumerate()
+            .map(|(i, (path, content))| Upsert {
+                replaces: None,
+                record: ImageRecord {
+                    root: 0,
+                    rel_path: (*path).into(),
+                    byte_size: 10,
+                    modified_unix_ns: 0,
+                    content_hash: [*content; 32],
+                    pixel_hash: [*content; 32],
+                    width: 4,
+                    height: 4,
+                    split: Some("train".into()),
+                    label: None,
+                },
+                embedding: vec![(i as f32).cos(), (i as f32).sin()],
+            })
+            .collect();
+        store
+            .commit(ChangeSet {
+                upserts,
+                ..ChangeSet::default()
+            })
+            .unwrap();
+        let catalog = Catalog::load(&store).unwrap();
+        (store, catalog)
+    }
+
+    fn decide(store: &Store, catalog: &Catalog, request: Request) -> Result<u64, EngineError> {
+        let mut state = DecisionState::load(store, catalog)?;
+        let action = request.resolve(catalog)?;
+        Ok(record(store, catalog, &mut state, "tester", action, None)?.number)
+    }
+
+    #[test]
+    fn undoing_the_latest_decision_brings_back_the_one_before() {
+        let dir = tempfile::tempdir().unwrap();
+        let (store, catalog) = store_with_four(dir.path());
+        let a = catalog.id_of_path("a.png").unwrap();
+        decide(
+            &store,
+            &catalog,
+            Request::Keep {
+                path: "a.png".into(),
+            },
+        )
+        .unwrap();
+        let dropped = decide(
+            &store,
+            &catalog,
+            Request::Drop {
+                path: "a.png".into(),
+            },
+        )
+        .unwrap();
+        assert_eq!(
+            DecisionState::load(&store, &catalog).unwrap().fate(a),
+            Some(Fate::Drop)
+        );
+        decide(&store, &catalog, Request::Undo { decision: dropped }).unwrap();
+        let state = DecisionState::load(&store, &catalog).unwrap();
+        assert_eq!(state.fate(a), Some(Fate::Keep));
+        assert_eq!(state.log[1].undone_by, Some(3));
+        // Undoing twice, or undoing an undo, is refused.
+        let again = decide(&store, &catalog, Request::Undo { decision: dropped });
+        assert!(matches!(again, Err(EngineError::InvalidDecision(_))));
+        let undo_of_undo = decide(&store, &catalog, Request::Undo { decision: 3 });
+        assert!(matches!(undo_of_undo, Err(EngineError::InvalidDecision(_))));
+    }
+
+    #[test]
+    fn a_decision_follows_its_content_and_is_stale_when_that_is_ambiguous_or_gone() {
+        let dir = tempfile::tempdir().unwrap();
+        let (_store, catalog) = store_with_four(dir.path());
+        let file = |path: &str| file_ref(&catalog, path).unwrap();
+        let logged = |number: u64, action: Action| LoggedDecision {
+            number,
+            decision: Decision {
+                at_unix_s: 0,
+                by: "tester".into(),
+                action,
+            },
+            undone_by: None,
+            stale: false,
+        };
+        // The same content under a new id (re-indexed) and a new path (renamed).
+        let mut moved = file("b.png");
+        moved.id += 1000;
+        moved.path = "old-name.png".into();
+        // `a.png`'s content is held by two images: without its id or path it
+        // cannot be told which one was meant.
+        let mut ambiguous = file("a.png");
+        ambiguous.id += 1000;
+        ambiguous.path = "elsewhere.png".into();
+        let mut changed = file("c.png");
+        changed.content_hash = hash_hex(&[9; 32]);
+        let state = DecisionState::from_log(
+            vec![
+                logged(1, Action::Drop { image: moved }),
+                logged(2, Action::Drop { image: ambiguous }),
+                logged(3, Action::Drop { image: changed }),
+            ],
+            &catalog,
+        );
+        let b = catalog.id_of_path("b.png").unwrap();
+        assert_eq!(state.fate(b), Some(Fate::Drop));
+        assert_eq!(
+            state.log.iter().map(|d| d.stale).collect::<Vec<_>>(),
+            [false, true, true]
+        );
+        assert_eq!(state.counts().dropped, 1);
+    }
 }

@@ -22,7 +22,7 @@ use serde::Serialize;
 use utoipa::ToSchema;
 use vitrine_engine::catalog::{dot, Catalog};
 use vitrine_engine::clusters::{ClusterOptions, ClusterReport};
-use vitrine_engine::decisions::{self, Action, LoggedDecision};
+use vitrine_engine::decisions::{self, Action, DecisionState, LoggedDecision};
 use vitrine_engine::duplicates::{DuplicateOptions, DuplicateReport, LeakOptions, LeakReport};
 use vitrine_engine::labels::{LabelOptions, SuggestionReport, SuspectReport};
 use vitrine_engine::neighbours::{
@@ -139,9 +139,10 @@ pub struct Collection {
     pub leaks: Memo<(LeakOptions, u64), LeakReport>,
     /// Counts recorded decisions, so that reports made before one are not served after it.
     decisions_recorded: AtomicU64,
-    /// Held while a decision is checked against the log and appended, so that
+    /// The decision log replayed for the snapshot generation it was loaded
+    /// at. Held while a decision is checked against it and appended, so that
     /// two reviewers deciding on one item cannot both pass the check.
-    decision_writes: Mutex<()>,
+    decisions: Mutex<Option<(u64, DecisionState)>>,
     /// Lives as long as the collection, so that pair verdicts outlast one
     /// query: another threshold or a new generation re-checks only new pairs.
     verifier: OnceLock<Arc<PairVerifier>>,
@@ -170,7 +171,7 @@ impl Collection {
             duplicates: Memo::default(),
             leaks: Memo::default(),
             decisions_recorded: AtomicU64::new(0),
-            decision_writes: Mutex::new(()),
+            decisions: Mutex::new(None),
             verifier: OnceLock::new(),
             verification_stopped: AtomicBool::new(false),
             precomputed: AtomicU8::new(0),
@@ -227,9 +228,17 @@ impl Collection {
         action: Action,
         seen: Option<u64>,
     ) -> Result<LoggedDecision, ApiError> {
-        let _one_at_a_time = self.decision_writes.lock();
+        let mut cached = self.decisions.lock();
         let recorded = self.with_store(BUSY_WAIT_FOR_DECISIONS, |store, snapshot| {
-            decisions::record(store, &snapshot.catalog, by, action, seen).map_err(ApiError::from)
+            let state = match &mut *cached {
+                Some((generation, state)) if *generation == snapshot.generation => state,
+                stale => {
+                    let state = DecisionState::load(store, &snapshot.catalog)?;
+                    &mut stale.insert((snapshot.generation, state)).1
+                }
+            };
+            decisions::record(store, &snapshot.catalog, state, by, action, seen)
+                .map_err(ApiError::from)
         })?;
         self.decisions_recorded.fetch_add(1, Ordering::SeqCst);
         Ok(recorded)
