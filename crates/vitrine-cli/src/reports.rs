@@ -371,6 +371,7 @@ impl Report for CalibrationTable {
             "recall mild",
             "recall strong",
             "false positives",
+            "recall decided",
         ]
     }
     fn rows(&self) -> Vec<Vec<String>> {
@@ -384,6 +385,9 @@ impl Report for CalibrationTable {
                     format!("{:.3}", p.recall_mild),
                     format!("{:.3}", p.recall_strong),
                     p.false_positives.to_string(),
+                    p.recall_decided
+                        .map(|r| format!("{r:.3}"))
+                        .unwrap_or_default(),
                 ]
             })
             .collect()
@@ -394,6 +398,10 @@ impl Report for CalibrationTable {
             format!(
                 "{} originals ({} unreadable skipped): {} mild and {} strong copies, {} nearest distinct images (highest similarity {:.3})",
                 r.originals, r.unreadable, r.mild_copies, r.strong_copies, r.negatives, r.max_negative_similarity
+            ),
+            format!(
+                "decided by people: {} copies (recall per threshold), {} pairs not copies (among the negatives)",
+                r.decided_copies, r.decided_not_copies
             ),
             match r.recommended_threshold {
                 Some(t) => format!("recommended threshold: {t:.3}"),

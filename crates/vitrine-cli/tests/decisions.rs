@@ -210,6 +210,11 @@ fn decisions_settle_reports_and_the_exported_manifest_reindexes_clean() {
         (counts["labels_given"].as_u64(), counts["undone"].as_u64()),
         (Some(1), Some(1))
     );
+    // Calibration takes the decided pairs as labelled pairs.
+    let calibration = json(&fx, &["calibrate", "--sample", "3"]);
+    assert_eq!(calibration["decided_copies"], 2, "{calibration}");
+    assert_eq!(calibration["decided_not_copies"], 1);
+    assert!(calibration["points"][0]["recall_decided"].is_number());
     let log = json(&fx, &["decide", "list"]);
     let log = log.as_array().unwrap();
     assert_eq!(log.len(), 6);

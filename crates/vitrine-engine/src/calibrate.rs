@@ -10,6 +10,7 @@
 //! trade-off over a grid of thresholds shows where this collection and model
 //! separate copies from different pictures. User files are only ever read.
 
+use std::collections::HashMap;
 use std::io::Cursor;
 
 use image::codecs::jpeg::JpegEncoder;
@@ -25,6 +26,7 @@ use vitrine_model::encoder::Encoder;
 use vitrine_store::Store;
 
 use crate::catalog::{dot, Catalog};
+use crate::decisions::{DecisionState, Fate};
 use crate::error::EngineError;
 use crate::ingest::fingerprint_of;
 use crate::progress::Progress;
@@ -346,6 +348,9 @@ pub struct ThresholdPoint {
     pub recall_mild: f64,
     pub recall_strong: f64,
     pub false_positives: usize,
+    /// Of the copies people confirmed (see [`CalibrationReport::decided_copies`]),
+    /// the share at or above the threshold; `None` without such decisions.
+    pub recall_decided: Option<f64>,
 }
 
 #[derive(Clone, Debug, Serialize)]
@@ -358,6 +363,13 @@ pub struct CalibrationReport {
     pub negatives: usize,
     /// The highest similarity of any sampled original to its nearest distinct image.
     pub max_negative_similarity: f32,
+    /// Copies people confirmed by dropping an image: each dropped image
+    /// paired with its nearest image that was not dropped. Their recall is
+    /// given per threshold.
+    pub decided_copies: usize,
+    /// Pairs people decided are not copies; they count as negatives, beside
+    /// the nearest distinct images of the sample.
+    pub decided_not_copies: usize,
     pub edits: Vec<EditSummary>,
     pub points: Vec<ThresholdPoint>,
     /// `None` when no threshold reaches the target precision.
@@ -372,6 +384,10 @@ pub struct SimilaritySample {
     /// `(edit, similarity of the copy to its original)`.
     pub positives: Vec<(Edit, f32)>,
     pub negatives: Vec<f32>,
+    /// Similarities of the pairs people confirmed as copies.
+    pub decided_copies: Vec<f32>,
+    /// Similarities of the pairs people decided are not copies (also in `negatives`).
+    pub decided_not_copies: Vec<f32>,
 }
 
 impl SimilaritySample {
@@ -403,6 +419,8 @@ impl SimilaritySample {
                     recall_mild: recall(&mild, threshold),
                     recall_strong: recall(&strong, threshold),
                     false_positives,
+                    recall_decided: (!self.decided_copies.is_empty())
+                        .then(|| recall(&self.decided_copies, threshold)),
                 }
             })
             .collect();
@@ -447,6 +465,8 @@ impl SimilaritySample {
                 .iter()
                 .copied()
                 .fold(f32::NEG_INFINITY, f32::max),
+            decided_copies: self.decided_copies.len(),
+            decided_not_copies: self.decided_not_copies.len(),
             edits,
             points,
             recommended_threshold,
@@ -530,10 +550,44 @@ pub fn calibrate(
         }
     }
     progress.finish();
+    add_decided_pairs(store, catalog, &mut sample)?;
     let mut report = sample.report(options);
     report.originals = rows.len() - unreadable;
     report.unreadable = unreadable;
     Ok(report)
+}
+
+/// The pairs people labelled through their decisions: a pair decided not
+/// to be copies is a negative; a dropped image and its nearest image that was
+/// not dropped are a copy.
+fn add_decided_pairs(
+    store: &Store,
+    catalog: &Catalog,
+    sample: &mut SimilaritySample,
+) -> Result<(), EngineError> {
+    let decisions = DecisionState::load(store, catalog)?;
+    let row_of_content: HashMap<[u8; 32], usize> = (0..catalog.len())
+        .map(|row| (catalog.records[row].content_hash, row))
+        .collect();
+    for (first, second) in decisions.distinct_pairs() {
+        if let (Some(&a), Some(&b)) = (row_of_content.get(&first), row_of_content.get(&second)) {
+            let similarity = catalog.similarity(a, b);
+            sample.decided_not_copies.push(similarity);
+            sample.negatives.push(similarity);
+        }
+    }
+    for row in 0..catalog.len() {
+        if decisions.fate(catalog.ids[row]) != Some(Fate::Drop) {
+            continue;
+        }
+        let hits = store.search(catalog.embedding_at(row), NEGATIVE_SEARCH_DEPTH, None)?;
+        let nearest_kept = hits.into_iter().find_map(|(id, similarity)| {
+            let other = catalog.row(id)?;
+            (other != row && decisions.fate(id) != Some(Fate::Drop)).then_some(similarity)
+        });
+        sample.decided_copies.extend(nearest_kept);
+    }
+    Ok(())
 }
 
 /// Neighbours looked at when the nearest ones are copies of the image itself.
@@ -619,6 +673,7 @@ mod tests {
         let sample = SimilaritySample {
             positives,
             negatives: vec![0.5, 0.8],
+            ..SimilaritySample::default()
         };
         let options = CalibrationOptions {
             target_precision: 1.0,
@@ -630,5 +685,24 @@ mod tests {
         assert_eq!(report.recommended_threshold, Some(0.85));
         assert_eq!(report.points[0].false_positives, 1);
         assert_eq!(report.max_negative_similarity, 0.8);
+        assert_eq!(report.points[0].recall_decided, None);
+    }
+
+    #[test]
+    fn copies_people_confirmed_get_a_recall_per_threshold() {
+        let sample = SimilaritySample {
+            positives: vec![(MILD_EDITS[0], 0.97)],
+            negatives: vec![0.5],
+            decided_copies: vec![0.96, 0.91, 0.72, 0.88],
+            decided_not_copies: Vec::new(),
+        };
+        let options = CalibrationOptions {
+            thresholds: vec![0.7, 0.9],
+            ..CalibrationOptions::default()
+        };
+        let report = sample.report(&options);
+        assert_eq!(report.decided_copies, 4);
+        assert_eq!(report.points[0].recall_decided, Some(1.0));
+        assert_eq!(report.points[1].recall_decided, Some(0.5));
     }
 }

@@ -317,6 +317,11 @@ impl DecisionState {
         self.fates.get(&id).map(|(fate, _)| *fate)
     }
 
+    /// The pairs of file contents people decided are not copies.
+    pub fn distinct_pairs(&self) -> impl Iterator<Item = ([u8; 32], [u8; 32])> + '_ {
+        self.distinct.keys().copied()
+    }
+
     /// Whether a person said these two images are not copies.
     pub fn are_distinct(&self, a: &ImageRecord, b: &ImageRecord) -> bool {
         self.distinct
