@@ -171,14 +171,12 @@ async function paths(selector) {
 before(async () => {
   fs.mkdirSync(artifactsDir, { recursive: true });
   // VITRINE_E2E_STORE: an already indexed copy of demo-images, to skip
-  // indexing while working on the page; it is left in place.
-  if (process.env.VITRINE_E2E_STORE) {
-    server = await startServer(vitrineBin, process.env.VITRINE_E2E_STORE);
-  } else {
-    store = fs.mkdtempSync(path.join(os.tmpdir(), 'vitrine-e2e-store-'));
-    await indexCollection(vitrineBin, store, demoDir);
-    server = await startServer(vitrineBin, store);
-  }
+  // indexing while working on the page. The tests serve a copy of it: they
+  // record decisions, and each run must start from none.
+  store = fs.mkdtempSync(path.join(os.tmpdir(), 'vitrine-e2e-store-'));
+  if (process.env.VITRINE_E2E_STORE) fs.cpSync(process.env.VITRINE_E2E_STORE, store, { recursive: true });
+  else await indexCollection(vitrineBin, store, demoDir);
+  server = await startServer(vitrineBin, store);
   browser = await launchBrowser();
   page = browser.page;
   page.on('request', (request) => requests.push(request.url()));
@@ -449,6 +447,352 @@ test('duplicates: a page of 1,000 groups renders and stays navigable by keyboard
   } finally {
     await page.unroute(pattern);
   }
+});
+
+// ------------------------------------------------------------ decisions
+// The tests below record decisions, so they come after every test that reads
+// the undecided reports. Expected values come from ground-truth.json and the
+// demo folder; what they decided is kept here for the training-list checks.
+
+const decided = {
+  /** Planted exact-duplicate group (its `files`) -> the one file kept. */
+  keepers: new Map(),
+  /** Evaluated copies of planted leaks that were dropped. */
+  droppedLeaks: [],
+  /** path -> label given in the Labels view. */
+  labels: new Map(),
+};
+
+function sameFiles(a, b) {
+  return a.length === b.length && a.every((f) => b.includes(f));
+}
+
+/** The progress line's counts: "N of M … decided". */
+async function progressCounts() {
+  const text = await page.textContent('#view [data-testid="progress"]');
+  const counts = text.match(/^(\d+) of (\d+) /);
+  assert.ok(counts, `the progress line reads "N of M …": ${text}`);
+  return { decided: Number(counts[1]), all: Number(counts[2]), text };
+}
+
+/**
+ * Waits until the decision a key press started is recorded and shown. The
+ * page marks the list busy from the key press until it shows the refreshed
+ * report, so this waits for a condition, not for time.
+ */
+async function untilSettled() {
+  await page.waitForFunction(() => !document.querySelector('#view [aria-busy]'));
+  const notice = await page.$('#view [data-testid="decision-notice"]:not([hidden])');
+  assert.equal(notice && await notice.textContent(), null, 'no decision was refused');
+}
+
+/**
+ * Loads the page afresh at `hash`: a new document, so nothing of the view
+ * shown before can be taken for the new one.
+ */
+async function openView(hash) {
+  await page.goto('about:blank');
+  await page.goto(`${server.url}/${hash}`);
+}
+
+/** Runs `action`, which opens another view, and waits until that view has asked for `urlPart` and shows its answer. */
+async function untilViewShown(urlPart, action) {
+  await Promise.all([page.waitForResponse((response) => response.url().includes(urlPart)), action()]);
+  await page.waitForFunction(() => !document.querySelector('#view [aria-busy]') && document.querySelector('#view [data-testid="progress"]')?.textContent);
+}
+
+/** The review item that has focus, as the page shows it. */
+async function focusedItem() {
+  return page.evaluate(() => {
+    const item = document.activeElement && document.activeElement.closest('.review-item');
+    if (!item) return null;
+    const cards = Array.from(item.querySelectorAll('.card'));
+    const next = item.parentElement.nextElementSibling;
+    return {
+      heading: item.getAttribute('aria-labelledby'),
+      key: item.dataset.item,
+      next: next && next.firstElementChild.dataset.item,
+      path: item.dataset.path,
+      counterpart: item.dataset.counterpart,
+      paths: cards.map((c) => c.dataset.path),
+      keeper: item.querySelector('.card.is-keeper')?.dataset.path ?? null,
+      last: !next,
+    };
+  });
+}
+
+/** The shown state of the review item holding `file`: decided flag and each image's decision. */
+async function itemState(file) {
+  return page.$$eval('#view .review-item', (items, wanted) => {
+    const item = items.find((el) => Array.from(el.querySelectorAll('.card')).some((c) => c.dataset.path === wanted));
+    if (!item) return null;
+    const cards = Array.from(item.querySelectorAll('.card'));
+    return {
+      decided: item.dataset.decided === 'true',
+      chip: Boolean(item.querySelector('header .chip.decided')),
+      decisions: Object.fromEntries(cards.map((c) => [c.dataset.path, c.dataset.decision || null])),
+    };
+  }, file);
+}
+
+/** Steps with j through the review list until `wanted(focusedItem)` holds; fails at the list's end. */
+async function stepTo(wanted, what) {
+  for (;;) {
+    const item = await focusedItem();
+    assert.ok(item, 'a review item has focus');
+    if (wanted(item)) return item;
+    assert.ok(!item.last, `${what} is reached before the end of the list`);
+    await page.keyboard.press('j');
+    await page.waitForFunction((heading) => document.activeElement.getAttribute('aria-labelledby') !== heading, item.heading);
+  }
+}
+
+test('decisions: planted exact copies are settled with the keyboard; u undoes the last decision', async () => {
+  await openView('#/duplicates?per_page=500');
+  await page.waitForSelector('[data-testid="groups"] .group');
+  const start = await progressCounts();
+  assert.equal(start.decided, 0, 'no group is decided before');
+  await page.focus('[data-testid="groups"] .group');
+
+  const remaining = truth.exact_duplicates.map((group) => group.files);
+  let last = null;
+  while (remaining.length) {
+    const item = await stepTo((i) => remaining.some((files) => sameFiles(files, i.paths)), 'every planted group');
+    const files = remaining.find((f) => sameFiles(f, item.paths));
+    await page.keyboard.press('a');
+    await untilSettled();
+    remaining.splice(remaining.indexOf(files), 1);
+
+    const progress = await progressCounts();
+    assert.equal(progress.decided, start.decided + truth.exact_duplicates.length - remaining.length, `progress counts up: ${progress.text}`);
+    assert.equal(progress.all, start.all, 'the groups in all stay the same');
+    await page.waitForFunction((text) => document.getElementById('announcer').textContent.includes(text), progress.text);
+    const shown = await itemState(files[0]);
+    assert.ok(shown.decided && shown.chip, `group ${files.join(' + ')} is shown decided`);
+    const kept = files.filter((f) => shown.decisions[f] === 'keep');
+    assert.deepEqual(kept, [item.keeper], 'the suggested keeper is kept');
+    for (const file of files.filter((f) => f !== item.keeper)) assert.equal(shown.decisions[file], 'drop', `${file} is dropped`);
+    decided.keepers.set(files, item.keeper);
+    if (!item.last) assert.equal((await focusedItem()).key, item.next, 'focus moves on to the next group');
+    last = { files, keeper: item.keeper };
+  }
+
+  // u takes back the latest decision: one drop of the last group, which is then open again.
+  const before = await progressCounts();
+  await page.keyboard.press('u');
+  await untilSettled();
+  assert.equal((await progressCounts()).decided, before.decided - 1, 'undo counts down');
+  const reverted = await itemState(last.files[0]);
+  assert.ok(!reverted.decided && !reverted.chip, 'the last group is open again');
+  assert.equal(last.files.filter((f) => reverted.decisions[f] === 'drop').length, last.files.length - 2, 'one drop is taken back');
+  const refocused = await focusedItem();
+  assert.ok(sameFiles(refocused.paths, last.files), 'focus is on the group the undone decision was about');
+
+  // And decided again.
+  await page.keyboard.press('a');
+  await untilSettled();
+  assert.equal((await progressCounts()).decided, before.decided, 'decided again');
+  assert.ok((await itemState(last.files[0])).decided);
+  await shot('duplicates-decided');
+});
+
+test('decisions: planted leaks are settled with the keyboard by dropping the evaluated copy', async () => {
+  await openView('#/leakage?per_page=200');
+  await page.waitForSelector('[data-testid="leaks"] .review-item');
+  const start = await progressCounts();
+  // Ground truth: no file is in more than one planted case, so the groups settled above touched no leak.
+  assert.equal(start.decided, 0, 'no leak is decided before');
+  const listed = await page.$$eval('[data-testid="leaks"] .review-item', (els) => els.map((el) => `${el.dataset.path} ${el.dataset.counterpart}`));
+  const planted = truth.leaks.filter((l) => listed.includes(`${l.leaked} ${l.train_counterpart}`));
+  for (const leak of truth.leaks.filter((l) => l.kind === 'exact-copy')) assert.ok(planted.includes(leak), `byte-identical leak ${leak.leaked} is listed`);
+
+  await page.focus('[data-testid="leaks"] .review-item');
+  const remaining = [...planted];
+  while (remaining.length) {
+    const item = await stepTo((i) => remaining.some((l) => l.leaked === i.path && l.train_counterpart === i.counterpart), 'every planted leak');
+    const leak = remaining.find((l) => l.leaked === item.path);
+    await page.keyboard.press('e');
+    await untilSettled();
+    remaining.splice(remaining.indexOf(leak), 1);
+    decided.droppedLeaks.push(leak.leaked);
+
+    const progress = await progressCounts();
+    assert.equal(progress.decided, planted.length - remaining.length, `progress counts up: ${progress.text}`);
+    assert.equal(progress.all, start.all);
+    const shown = await itemState(leak.leaked);
+    assert.ok(shown.decided && shown.chip, `leak ${leak.leaked} is shown decided`);
+    assert.equal(shown.decisions[leak.leaked], 'drop', 'the evaluated copy is dropped');
+    assert.equal(shown.decisions[leak.train_counterpart], null, 'the reference copy is left alone');
+    if (!item.last) assert.equal((await focusedItem()).key, item.next, 'focus moves on to the next pair');
+  }
+
+  // "Still to review" asks for the open leaks only: the settled ones leave the list, the count stays.
+  await untilViewShown('undecided=true', () => page.check('#undecided'));
+  const open = await page.$$eval('#view .review-item', (els) => els.map((el) => el.dataset.path));
+  for (const file of decided.droppedLeaks) assert.ok(!open.includes(file), `${file} is no longer listed`);
+  const progress = await progressCounts();
+  assert.equal(progress.decided, planted.length);
+  assert.equal(progress.all, start.all);
+  await shot('leakage-decided');
+});
+
+test('decisions: a decision recorded elsewhere meanwhile is refused and the view shows the current state', async () => {
+  const planted = searchCase();
+  await openView('#/duplicates?per_page=500');
+  await page.waitForSelector('[data-testid="groups"] .group');
+  const group = await page.$$eval('[data-testid="groups"] .group', (els, file) => {
+    const el = els.find((g) => Array.from(g.querySelectorAll('.card')).some((c) => c.dataset.path === file));
+    return el && { heading: el.getAttribute('aria-labelledby'), keeper: el.querySelector('.card.is-keeper').dataset.path };
+  }, planted.original);
+  assert.ok(group, `the planted ${planted.edit} pair is a group`);
+  const before = await progressCounts();
+
+  // Another reviewer keeps the keeper after this page loaded the group.
+  const { key } = await (await fetch(`${server.url}/api/v1/page-key`)).json();
+  const recorded = await fetch(await collectionUrl('/decisions'), {
+    method: 'POST',
+    headers: { 'Content-Type': 'application/json', 'X-Vitrine-Page-Key': key },
+    body: JSON.stringify({ action: 'keep', path: group.keeper }),
+  });
+  assert.equal(recorded.status, 201);
+
+  await page.focus(`[data-testid="groups"] .group[aria-labelledby="${group.heading}"]`);
+  await page.keyboard.press('a');
+  await page.waitForFunction(() => !document.querySelector('#view [aria-busy]'));
+  const notice = await page.textContent('#view [data-testid="decision-notice"]:not([hidden])');
+  assert.match(notice, /current state/, 'the refusal is shown');
+  const shown = await itemState(planted.original);
+  assert.equal(shown.decisions[group.keeper], 'keep', 'the view was reloaded with the other decision');
+  assert.ok(!shown.decided, 'nothing of the refused batch was recorded');
+  assert.equal((await progressCounts()).decided, before.decided);
+});
+
+test('decisions: after a reload the page shows the decisions the store holds', async () => {
+  await openView('#/duplicates?per_page=500');
+  await page.waitForSelector('[data-testid="groups"] .group');
+  const progress = await progressCounts();
+  await page.reload();
+  await page.waitForSelector('[data-testid="groups"] .group');
+  assert.equal((await progressCounts()).text, progress.text, 'the progress line is the same');
+  for (const [files, keeper] of decided.keepers) {
+    const shown = await itemState(files[0]);
+    assert.ok(shown.decided && shown.chip, `group ${files.join(' + ')} is still decided`);
+    for (const file of files) assert.equal(shown.decisions[file], file === keeper ? 'keep' : 'drop', file);
+  }
+
+  await openView('#/leakage?per_page=200');
+  await page.reload();
+  await page.waitForSelector('[data-testid="leaks"] .review-item');
+  assert.equal((await progressCounts()).decided, decided.droppedLeaks.length);
+  for (const file of decided.droppedLeaks) {
+    const shown = await itemState(file);
+    assert.ok(shown.decided, `leak ${file} is still decided`);
+    assert.equal(shown.decisions[file], 'drop');
+  }
+});
+
+/** The indexed demo files by the folder convention split/label/file; unsorted/ files have neither. */
+function demoRows() {
+  const broken = new Set(truth.broken.map((b) => b.path));
+  const rows = fs.readdirSync(demoDir, { recursive: true })
+    .map((name) => name.split(path.sep).join('/'))
+    // Files at the top are the folder's own notes and ground truth, not images.
+    .filter((name) => name.includes('/') && !broken.has(name) && fs.statSync(path.join(demoDir, name)).isFile())
+    .map((name) => {
+      const parts = name.split('/');
+      return parts.length === 3 ? [name, parts[0], parts[1]] : [name, '', ''];
+    });
+  assert.equal(rows.length, truth.files.length - truth.broken.length, 'the folder holds the files ground truth lists');
+  return rows;
+}
+
+/** The training list expected after the decisions above, as CSV lines sorted by path. */
+function expectedManifest() {
+  const dropped = new Set(decided.droppedLeaks);
+  for (const [files, keeper] of decided.keepers) files.filter((f) => f !== keeper).forEach((f) => dropped.add(f));
+  return ['path,split,label', ...demoRows()
+    .filter(([file]) => !dropped.has(file))
+    .map(([file, split, label]) => [file, split, decided.labels.get(file) ?? label])
+    .sort(([a], [b]) => (a < b ? -1 : a > b ? 1 : 0))
+    .map((row) => row.join(','))];
+}
+
+/** The training list as the page's link downloads it, as lines. */
+async function downloadManifest() {
+  const [download] = await Promise.all([page.waitForEvent('download'), page.click('#view [data-testid="manifest"]')]);
+  return fs.readFileSync(await download.path(), 'utf8').split(/\r?\n/).filter((line, i, all) => line || i < all.length - 1);
+}
+
+test('decisions: the downloaded training list leaves out exactly the dropped copies', async () => {
+  assert.equal(decided.keepers.size, truth.exact_duplicates.length, 'every planted exact group was decided above');
+  await openView('#/duplicates?per_page=500');
+  await page.waitForSelector('#view [data-testid="manifest"]');
+  const lines = await downloadManifest();
+  assert.deepEqual(lines, expectedManifest());
+  // Ground truth: one file of each planted group of identical copies is left.
+  for (const group of truth.exact_duplicates) {
+    assert.equal(group.files.filter((f) => lines.some((line) => line.startsWith(`${f},`))).length, 1, `one of ${group.files.join(' + ')} is listed`);
+  }
+});
+
+test('labels: suggestions and suspects beside their neighbours; a accepts a suggestion', async (t) => {
+  const unlabelled = new Map(truth.unlabelled.map((u) => [u.path, u.true_label]));
+  await page.click('.views a[data-view="labels"]');
+  await page.waitForSelector('[data-testid="suggestions"] .review-item');
+  const items = await page.$$eval('[data-testid="suggestions"] .review-item', (els) => els.map((el) => ({ path: el.dataset.path, proposed: el.dataset.proposed })));
+  assert.ok(items.length >= 1, 'at least one unlabelled image gets a suggestion');
+  for (const item of items) {
+    assert.ok(unlabelled.has(item.path), `${item.path} is one of the unlabelled images`);
+    assert.equal(item.proposed, unlabelled.get(item.path), `the suggestion for ${item.path} is the label it was rendered as`);
+  }
+  const first = items[0];
+  const arguing = await page.waitForSelector(`[data-testid="suggestions"] .review-item[data-path="${first.path}"] [data-testid="arguing"]`);
+  const neighbours = await arguing.$$eval('li', (els) => els.map((el) => ({ path: el.dataset.path, label: el.dataset.label })));
+  assert.ok(neighbours.length >= 1, 'neighbours that argue for the suggestion are shown');
+  for (const n of neighbours) {
+    assert.equal(n.label, first.proposed, `${n.path} carries the suggested label`);
+    assert.equal(n.path.split('/')[1], n.label, `${n.path} is labelled as its folder says`);
+  }
+  const start = await progressCounts();
+  assert.deepEqual([start.decided, start.all], [0, items.length]);
+  await shot('labels');
+
+  await page.focus(`[data-testid="suggestions"] .review-item[data-path="${first.path}"]`);
+  await page.keyboard.press('a');
+  await untilSettled();
+  const accepted = await page.$eval(`[data-testid="suggestions"] .review-item[data-path="${first.path}"]`, (el) => ({
+    decided: el.dataset.decided, given: el.dataset.given, chip: el.querySelector('header .chip.decided')?.textContent,
+  }));
+  assert.deepEqual(accepted, { decided: 'true', given: unlabelled.get(first.path), chip: `labelled “${unlabelled.get(first.path)}”` });
+  assert.equal((await progressCounts()).decided, 1);
+  decided.labels.set(first.path, unlabelled.get(first.path));
+  if (items.length > 1) assert.equal((await focusedItem()).path, items[1].path, 'focus moves on to the next suggestion');
+
+  // Suspects: labelled images the collection contradicts. The demo plants no
+  // mislabel, so a suspect can only be confirmed: c keeps its own label.
+  await page.click('[data-tab="suspects"]');
+  await page.waitForSelector('[data-testid="suspects"] .review-item, #view [data-state="empty"]');
+  const suspects = await page.$$eval('[data-testid="suspects"] .review-item', (els) => els.map((el) => ({
+    path: el.dataset.path, proposed: el.dataset.proposed, own: el.querySelector('.card .chip.label').textContent,
+  })));
+  t.diagnostic(`${suspects.length} suspect labels`);
+  for (const suspect of suspects) {
+    assert.equal(suspect.own, suspect.path.split('/')[1], `${suspect.path} shows its own label`);
+    assert.notEqual(suspect.proposed, suspect.own, 'the label it points to is another one');
+  }
+  if (suspects.length) {
+    const [suspect] = suspects;
+    const strip = await page.waitForSelector(`[data-testid="suspects"] .review-item[data-path="${suspect.path}"] [data-testid="arguing"]`);
+    assert.ok((await strip.$$eval('li', (els) => els.map((el) => el.dataset.label))).every((l) => l === suspect.proposed));
+    await page.focus(`[data-testid="suspects"] .review-item[data-path="${suspect.path}"]`);
+    await page.keyboard.press('c');
+    await untilSettled();
+    assert.equal(await page.getAttribute(`[data-testid="suspects"] .review-item[data-path="${suspect.path}"]`, 'data-given'), suspect.own);
+    await shot('suspects');
+  }
+
+  // The given label is in the training list; a confirmed label changes nothing there.
+  assert.deepEqual(await downloadManifest(), expectedManifest());
 });
 
 test('the page raised no script error', () => {

@@ -1,6 +1,6 @@
 // vitrine review page: plain JavaScript, no framework, talks only to its own
 // origin (the JSON API under /api/v1). Views are chosen by the URL hash
-// (#/search, #/duplicates, #/leakage, #/clusters, #/image/ID) so every view
+// (#/search, #/duplicates, #/leakage, #/clusters, #/labels, #/image/ID) so every view
 // can be bookmarked and the browser's back button works.
 (() => {
   'use strict';
@@ -37,6 +37,8 @@
     searchFile: null,
     searchFileUrl: null,
     pendingG: false,
+    // Resolves with the key decisions are sent with (empty when the service gives none).
+    pageKey: Promise.resolve(''),
   };
 
   // ------------------------------------------------------------------ DOM
@@ -59,7 +61,7 @@
     return el;
   }
 
-  function append(el, children) {
+  function append(el, ...children) {
     for (const child of children.flat(Infinity)) {
       if (child === null || child === undefined || child === false) continue;
       el.append(child instanceof Node ? child : document.createTextNode(String(child)));
@@ -245,6 +247,7 @@
     { pattern: /^\/leakage$/, view: 'leakage', render: renderLeakage },
     { pattern: /^\/clusters$/, view: 'clusters', render: renderClusters },
     { pattern: /^\/clusters\/([^/]+)$/, view: 'clusters', render: renderCluster },
+    { pattern: /^\/labels$/, view: 'labels', render: renderLabels },
     { pattern: /^\/image\/([^/]+)$/, view: null, render: renderImage },
   ];
 
@@ -266,7 +269,7 @@
     // A control that changed the address is rebuilt with the view: focus returns to its twin.
     const focusedId = !pathChanged && document.activeElement && root.contains(document.activeElement)
       ? document.activeElement.id : '';
-    if (previewObserver) previewObserver.disconnect();
+    if (nearScreenObserver) nearScreenObserver.disconnect();
     root.replaceChildren();
     if (!match) {
       root.append(emptyState('This page does not exist.', h('span', {}, 'Go to ', h('a', { href: '#/search' }, 'Search'), '.')));
@@ -368,6 +371,11 @@
     return h('span', { class: `chip tier tier-${known}`, title: TIER_TEXT[known] }, tier || 'near');
   }
 
+  /** What a person decided for one image; the file itself is never touched. */
+  function fateChip(fate) {
+    return h('span', { class: `chip fate-${fate}`, title: 'Recorded in the store; the image file is not touched.' }, `decided: ${fate}`);
+  }
+
   function splitLabelChips(img) {
     return h('div', { class: 'chips' },
       img.split ? chip(img.split, 'split') : chip('no split', 'none'),
@@ -381,15 +389,16 @@
 
   /**
    * One image as a card: its thumbnail links to the image's detail page.
-   * options: score, tier, keeper, rank, meta (text), actions (nodes), tag (element name)
+   * options: score, tier, keeper, decision ('keep' | 'drop'), rank, meta (text), actions (nodes), tag (element name)
    */
   function imageCard(item, options = {}) {
     const img = imageOf(item);
     const detail = href(`/image/${encodeURIComponent(img.id)}`);
     const card = h(options.tag || 'article', {
-      class: `card${options.keeper ? ' is-keeper' : ''}`,
+      class: ['card', options.keeper && 'is-keeper', options.decision === 'drop' && 'is-dropped'].filter(Boolean).join(' '),
       dataset: { id: String(img.id), path: img.path || '' },
     });
+    if (options.decision) card.dataset.decision = options.decision;
     if (options.rank !== undefined) card.append(h('span', { class: 'rank', 'aria-hidden': 'true' }, `#${options.rank}`));
     card.append(h('a', { class: 'thumb-link', href: detail }, thumb(img)));
     if (options.keeper !== undefined || options.tier || options.score !== undefined) {
@@ -404,6 +413,7 @@
     }
     card.append(h('p', { class: 'path' }, h('a', { href: detail }, pathText(img))));
     card.append(splitLabelChips(img));
+    if (options.decision) card.append(h('div', { class: 'chips' }, fateChip(options.decision)));
     if (options.meta) card.append(h('p', { class: 'meta' }, options.meta));
     if (options.actions) card.append(h('div', { class: 'actions' }, options.actions));
     return card;
@@ -569,11 +579,27 @@
       announce('End of this page. Press n for the next page.');
       index = items.length - 1;
     }
-    const item = items[index];
+    focusItem(list, items[index]);
+    return true;
+  }
+
+  function focusItem(list, item) {
     setCurrent(list, item);
     item.focus({ preventScroll: true });
     item.scrollIntoView({ block: 'nearest' });
-    return true;
+  }
+
+  /**
+   * The decision button a letter key presses: the focused item's own (so a
+   * decision never lands on an item the reviewer is not looking at), else a
+   * view-wide one such as undo.
+   */
+  function buttonForKey(key, target) {
+    const selector = `button[data-key="${key}"]`;
+    const item = target instanceof Element ? target.closest('#view .review-item') : null;
+    const button = (item && item.querySelector(selector)) ||
+      Array.from(document.querySelectorAll(`#view ${selector}`)).find((b) => !b.closest('.review-item'));
+    return button && !button.disabled ? button : null;
   }
 
   function isTyping(target) {
@@ -586,7 +612,7 @@
     const key = event.key;
     if (state.pendingG) {
       state.pendingG = false;
-      const views = { s: '#/search', d: '#/duplicates', l: '#/leakage', c: '#/clusters' };
+      const views = { s: '#/search', d: '#/duplicates', l: '#/leakage', c: '#/clusters', b: '#/labels' };
       if (views[key]) { event.preventDefault(); navigate(views[key]); }
       return;
     }
@@ -604,7 +630,203 @@
     } else if (key === 'g') {
       state.pendingG = true;
       setTimeout(() => { state.pendingG = false; }, 1200);
+    } else if (/^[a-z]$/.test(key)) {
+      const button = buttonForKey(key, event.target);
+      if (button) { event.preventDefault(); button.click(); }
     }
+  }
+
+  // --------------------------------------------------------- decisions
+  // Decisions are recorded in the collection's store only: the training list
+  // the service writes leaves dropped images out, the image files stay as they are.
+
+  /** Records one decision; the page key shows the service it comes from its own page. */
+  async function postDecision(body) {
+    return api(collectionPath('/decisions'), {
+      method: 'POST',
+      body: JSON.stringify(body),
+      headers: { 'Content-Type': 'application/json', 'X-Vitrine-Page-Key': await state.pageKey },
+    });
+  }
+
+  /**
+   * Records `requests` in order, each with the latest decision number the
+   * reviewer saw on its images (`seen`: path -> number), so the service can
+   * refuse it when someone else decided on them meanwhile. Each answer moves
+   * `seen` on: the second decision of a batch on one image is not a conflict.
+   */
+  async function recordDecisions(requests, seen) {
+    for (const request of requests) {
+      const paths = request.path ? [request.path] : [request.first, request.second];
+      const recorded = await postDecision({ ...request, seen: Math.max(...paths.map((p) => seen.get(p) || 0)) });
+      for (const path of paths) seen.set(path, recorded.number);
+    }
+  }
+
+  function decisionLog(ctx) {
+    return api(collectionPath('/decisions'), { signal: ctx.signal });
+  }
+
+  /** The root-relative paths a logged decision names (none for an undo). */
+  function decisionPaths(decision) {
+    if (decision.image) return [decision.image.path];
+    if (decision.first) return [decision.first.path, decision.second.path];
+    return [];
+  }
+
+  function inEffect(decision) {
+    return decision.undone_by === null && !decision.stale && decision.action !== 'undo';
+  }
+
+  /** path -> the latest decision in effect on it, of `actions` (of any action when omitted). */
+  function latestByPath(log, actions) {
+    const latest = new Map();
+    for (const decision of log.decisions) {
+      if (!inEffect(decision) || (actions && !actions.includes(decision.action))) continue;
+      for (const path of decisionPaths(decision)) latest.set(path, decision);
+    }
+    return latest;
+  }
+
+  const ACTION_TEXT = {
+    drop: 'drop', keep: 'keep', distinct: 'not copies', label: 'label', reject_suggestion: 'reject the suggestion', split: 'split',
+  };
+
+  function describeDecision(decision) {
+    const value = decision.action === 'label' ? ` “${decision.label}”` : decision.action === 'split' ? ` ${decision.split}` : '';
+    return `${ACTION_TEXT[decision.action]}${value} (${decisionPaths(decision).join(' and ')})`;
+  }
+
+  /**
+   * 'a of b groups decided · c pairs left out as not copies' from a report
+   * page's counts; under `undecided` its total counts the open ones only.
+   */
+  function reportProgress(report, total, undecidedOnly, noun) {
+    const all = undecidedOnly ? total + report.decided : total;
+    const leftOut = report.left_out_as_distinct;
+    return `${report.decided} of ${all} ${noun}${all === 1 ? '' : 's'} decided` +
+      (leftOut ? ` · ${leftOut} pair${leftOut === 1 ? '' : 's'} left out as not copies` : '');
+  }
+
+  /** A button for one decision; `key` presses it while its item (or, outside items, its view) has focus. */
+  function decisionButton(key, text, onclick, disabled = false) {
+    return h('button', { type: 'button', class: 'decision', dataset: { key }, 'aria-keyshortcuts': key, disabled, onclick },
+      h('kbd', { 'aria-hidden': 'true' }, key), text);
+  }
+
+  function undecidedToggle(params) {
+    const box = h('input', { type: 'checkbox', id: 'undecided', checked: params.get('undecided') === 'true' });
+    box.addEventListener('change', () => navigate(hrefWith({ undecided: box.checked ? 'true' : '', page: 1 })));
+    return h('div', { class: 'field' }, h('span', {}, 'Show'), h('label', { for: 'undecided', class: 'inline-check' }, box, 'Still to review'));
+  }
+
+  function manifestLink() {
+    return h('a', { class: 'button', href: `${API}${collectionPath('/manifest')}`, download: true, dataset: { testid: 'manifest' } },
+      'Download training list (CSV)');
+  }
+
+  function holdsPath(item, path) {
+    return Array.from(item.querySelectorAll('.card')).some((card) => card.dataset.path === path);
+  }
+
+  /**
+   * The decide-then-refresh loop of a review view. After each decision the
+   * view's report is asked for again: only the service knows how a decision
+   * changes groups, leaks and counts, and the page shows what the store holds.
+   * `load()` resolves with the slot's nodes (a list made by makeReviewList,
+   * each item with a `data-item` key) and writes the `progress` line.
+   */
+  function decisionSession(ctx, { slot, progress, notice, load }) {
+    let busy = false;
+
+    async function refresh(choose) {
+      const current = slot.querySelector('.is-current');
+      const currentKey = current && current.dataset.item;
+      const nodes = await load();
+      if (!ctx.isCurrent()) return;
+      slot.replaceChildren(...[nodes].flat().filter(Boolean));
+      const list = slot.querySelector('.js-review');
+      const items = list ? reviewItems(list) : [];
+      const target = items.length && (choose(items) || items.find((i) => i.dataset.item === currentKey) || items[0]);
+      if (target) focusItem(list, target);
+      else progress.focus();
+    }
+
+    async function run(work) {
+      if (busy) {
+        announce('Still recording the last decision.');
+        return;
+      }
+      busy = true;
+      slot.setAttribute('aria-busy', 'true');
+      notice.hidden = true;
+      try {
+        const outcome = await work();
+        if (ctx.isCurrent()) announce(outcome);
+      } catch (err) {
+        if (err.name === 'AbortError' || !ctx.isCurrent()) return;
+        notice.textContent = err.status === 409 ? `${err.message} The view now shows the current state.` : err.message;
+        notice.hidden = false;
+      } finally {
+        busy = false;
+        slot.removeAttribute('aria-busy');
+      }
+    }
+
+    /** Records `requests` for `item`, then shows the result with focus on the next item. */
+    function decide(item, requests, seen, doneText) {
+      return run(async () => {
+        const key = item.dataset.item;
+        const before = reviewItems(item.closest('.js-review'));
+        const index = before.indexOf(item);
+        const nextKey = before[index + 1] && before[index + 1].dataset.item;
+        let failure = null;
+        try {
+          await recordDecisions(requests, seen);
+        } catch (err) {
+          failure = err;
+        }
+        // Refreshed even after a refusal: the view then shows what the store holds now.
+        await refresh((items) => {
+          const byKey = (k) => k !== undefined && items.find((i) => i.dataset.item === k);
+          if (failure) return byKey(key) || items[Math.min(index, items.length - 1)];
+          return byKey(nextKey) || items[Math.min(index + (byKey(key) ? 1 : 0), items.length - 1)];
+        });
+        if (failure) throw failure;
+        return `${doneText} ${progress.textContent}.`;
+      });
+    }
+
+    /** Takes back the collection's latest decision still in effect, then focuses the item it was about. */
+    function undo() {
+      return run(async () => {
+        const log = await decisionLog(ctx);
+        const last = log.decisions.filter((d) => d.undone_by === null && d.action !== 'undo').pop();
+        if (!last) return 'There is no decision to undo.';
+        await postDecision({ action: 'undo', decision: last.number });
+        const paths = decisionPaths(last);
+        await refresh((items) => items.find((item) => paths.some((path) => holdsPath(item, path))));
+        return `Undone: ${describeDecision(last)}. ${progress.textContent}.`;
+      });
+    }
+
+    return { decide, undo };
+  }
+
+  /** The line that counts decided items, the notice for refused decisions and the undo button. */
+  function decisionBar(session, progress, notice) {
+    return h('div', { class: 'decision-bar' },
+      progress,
+      decisionButton('u', 'Undo last decision', () => session.undo()),
+      manifestLink(),
+      notice);
+  }
+
+  function decisionParts() {
+    return {
+      progress: h('p', { class: 'progress', tabindex: '-1', dataset: { testid: 'progress' } }),
+      notice: h('p', { class: 'decision-notice', role: 'alert', hidden: true, dataset: { testid: 'decision-notice' } }),
+    };
   }
 
   // ------------------------------------------------------------ Search
@@ -801,8 +1023,10 @@
     const { params, root } = ctx;
     const { page, perPage } = pageParams(params, 50);
     const near = nearSettings(params);
+    const undecidedOnly = params.get('undecided') === 'true';
     const slot = h('div', {});
     const summary = h('p', { class: 'lede', 'aria-live': 'polite', dataset: { testid: 'duplicates-summary' } });
+    const { progress, notice } = decisionParts();
     let shownGroups = [];
     let shownValue = near.requested;
 
@@ -813,21 +1037,10 @@
     exportButtons.forEach((b) => { b.disabled = true; });
     const toolbarSlot = h('div', { class: 'toolbar', role: 'group', 'aria-label': 'Duplicate settings' });
 
-    root.append(
-      viewHead('Duplicates', 'Groups of copies of one picture. The suggested keeper (most pixels, then largest file) is outlined in green; the others are copies to review.'),
-      toolbarSlot, summary, slot);
-
-    const buildToolbar = (value) => {
-      toolbarSlot.replaceChildren(
-        ...nearControls(near, value),
-        perPageSelect(perPage, [25, 50, 100, 200, 500]),
-        h('span', { class: 'spacer' }),
-        ...exportButtons);
-    };
-    buildToolbar(shownValue !== undefined ? shownValue : 0.9);
-
-    await fill(ctx, slot, near.verify ? 'Finding and verifying duplicate groups…' : 'Finding duplicate groups…', async () => {
-      const data = await api(collectionPath('/duplicates') + queryString({ ...near.query, page, per_page: perPage }), { signal: ctx.signal });
+    const load = async (first) => {
+      const data = await api(collectionPath('/duplicates') + queryString({
+        ...near.query, undecided: undecidedOnly ? 'true' : undefined, page, per_page: perPage,
+      }), { signal: ctx.signal });
       const groups = listOf(data, 'groups');
       const total = pick(data, 'total');
       const served = pick(data, near.key);
@@ -840,12 +1053,18 @@
       const count = typeof total === 'number' ? total : groups.length;
       const tierCounts = TIERS.map((t) => [t, groups.filter((g) => g.tier === t).length]).filter(([, n]) => n);
       const bound = near.verify ? 'checked from similarity' : 'at similarity';
-      summary.textContent = `${count} group${count === 1 ? '' : 's'}` +
+      const text = `${count}${undecidedOnly ? ' undecided' : ''} group${count === 1 ? '' : 's'}` +
         (shownValue !== undefined ? ` ${bound} ≥ ${shownValue.toFixed(3)}` : '') +
         (tierCounts.length ? ` · this page: ${tierCounts.map(([t, n]) => `${n} ${TIER_TEXT[t]}`).join(', ')}` : '') +
-        '.' + verificationText(data.verification) + ' Use j / k to step through the groups.';
-      announce(`${count} duplicate groups.`);
+        '.' + verificationText(data.verification) +
+        ' Use j / k to step through the groups; a accepts the suggested keeper, x marks a group as not copies, u undoes.';
+      // Rewritten only when it changes, so a refresh after a decision does not repeat it aloud.
+      if (summary.textContent !== text) summary.textContent = text;
+      // Groups made up for the render benchmark carry no decision counts.
+      progress.textContent = typeof data.decided === 'number' ? reportProgress(data, count, undecidedOnly, 'group') : '';
+      if (first) announce(`${count} duplicate groups.`);
       if (!groups.length) {
+        if (undecidedOnly) return emptyState('No group is left to review on this page.', 'Clear “Still to review” to see the decided groups.');
         return emptyState('No duplicate groups at this setting.',
           near.verify ? 'Lower the similarity from which pairs are checked, or turn verification off.' : 'Lower the similarity threshold to include looser near-duplicates.');
       }
@@ -856,27 +1075,61 @@
         'aria-label': 'Duplicate groups',
       });
       const fragment = document.createDocumentFragment();
-      groups.forEach((group, index) => fragment.append(h('li', {}, duplicateGroup(group, offset + index + 1))));
+      groups.forEach((group, index) => fragment.append(h('li', {}, duplicateGroup(group, offset + index + 1, session))));
       list.append(fragment);
       makeReviewList(list);
       return [list, pager({ page, perPage, total, shown: groups.length })];
-    });
+    };
+    const session = decisionSession(ctx, { slot, progress, notice, load });
+
+    root.append(
+      viewHead('Duplicates', 'Groups of copies of one picture. The suggested keeper (most pixels, then largest file) is outlined in green; the others are copies to review.'),
+      toolbarSlot, summary, decisionBar(session, progress, notice), slot);
+
+    const buildToolbar = (value) => {
+      toolbarSlot.replaceChildren(
+        ...nearControls(near, value),
+        perPageSelect(perPage, [25, 50, 100, 200, 500]),
+        undecidedToggle(params),
+        h('span', { class: 'spacer' }),
+        ...exportButtons);
+    };
+    buildToolbar(shownValue !== undefined ? shownValue : 0.9);
+
+    await fill(ctx, slot, near.verify ? 'Finding and verifying duplicate groups…' : 'Finding duplicate groups…', () => load(true));
   }
 
-  function duplicateGroup(group, number) {
+  function duplicateGroup(group, number, session) {
     const members = listOf(group, 'members').map(imageOf);
+    const keeper = members.find((m) => m.keeper) || members[0];
+    const others = members.filter((m) => m !== keeper);
+    const seen = new Map(members.map((m) => [m.path, m.last_decision]));
     const headingId = `group-${number}`;
-    return h('section', { class: 'review-item group', 'aria-labelledby': headingId, dataset: { tier: group.tier || '' } },
+    const section = h('section', {
+      class: `review-item group${group.decided ? ' is-decided' : ''}`,
+      'aria-labelledby': headingId,
+      dataset: { tier: group.tier || '', item: keeper.path, decided: String(Boolean(group.decided)) },
+    });
+    const decide = (requests, doneText) => session.decide(section, requests, seen, `Group ${number}: ${doneText}.`);
+    return append(section,
       h('header', {},
         h('h2', { id: headingId }, `Group ${number}`),
         tierChip(group.tier),
+        group.decided ? chip('decided', 'decided') : null,
         h('span', { class: 'count' }, `${members.length} images`)),
       h('div', { class: 'members' }, members.map((m) => imageCard(m, {
         keeper: Boolean(m.keeper),
+        decision: m.decision,
         tier: m.keeper ? null : m.tier,
         score: m.keeper ? undefined : pick(m, 'similarity'),
         meta: [m.width && m.height ? `${m.width}×${m.height}` : '', formatBytes(m.byte_size), checkText(m.check)].filter(Boolean).join(' · '),
-      }))));
+      }))),
+      h('div', { class: 'decide', role: 'group', 'aria-label': `Decide on group ${number}` },
+        decisionButton('a', 'Accept suggestion', () => decide(
+          [{ action: 'keep', path: keeper.path }, ...others.map((m) => ({ action: 'drop', path: m.path }))],
+          `kept ${keeper.path}, dropped ${others.length}`)),
+        decisionButton('x', 'Not copies', () => decide(
+          others.map((m) => ({ action: 'distinct', first: keeper.path, second: m.path })), 'marked as not copies'))));
   }
 
   const CSV_COLUMNS = ['group', 'group_tier', 'id', 'path', 'root', 'split', 'label', 'tier', 'similarity', 'check', 'check_score', 'keeper', 'width', 'height', 'byte_size'];
@@ -946,36 +1199,51 @@
       selectField('against', 'Reference split', splits.map((s) => [s, s]), against,
         (value) => navigate(hrefWith({ against: value, split: [], page: 1 }))),
       ...nearControls(near, near.requested !== undefined ? near.requested : (near.verify ? 0.6 : 0.9)),
-      perPageSelect(perPage, [25, 50, 100, 200]));
+      perPageSelect(perPage, [25, 50, 100, 200]),
+      undecidedToggle(params));
+    const undecidedOnly = params.get('undecided') === 'true';
     const summarySlot = h('div', {});
     const listSlot = h('div', {});
-    root.append(
-      viewHead('Leakage', `Images of the evaluated splits that have a copy or near-copy in the reference split (${against}). A leaked test image makes a model look better than it is.`),
-      toolbar, summarySlot, listSlot);
+    const { progress, notice } = decisionParts();
 
-    await fill(ctx, listSlot, 'Comparing splits…', async () => {
-      const data = await api(collectionPath('/leaks') + queryString({
-        split: chosen, against, ...near.query, page, per_page: perPage,
-      }), { signal: ctx.signal });
+    const load = async (first) => {
+      const [data, log] = await Promise.all([
+        api(collectionPath('/leaks') + queryString({
+          split: chosen, against, ...near.query, undecided: undecidedOnly ? 'true' : undefined, page, per_page: perPage,
+        }), { signal: ctx.signal }),
+        decisionLog(ctx),
+      ]);
       const reference = pick(data, 'reference_split') || against;
       const summary = listOf(data, 'summary');
       summarySlot.replaceChildren(...[leakSummary(summary, reference)].filter(Boolean));
       const leaks = listOf(data, 'leaks', 'pairs');
       const total = pick(data, 'total');
-      announce(`${typeof total === 'number' ? total : leaks.length} leaked images.`);
+      const count = typeof total === 'number' ? total : leaks.length;
+      if (first) announce(`${count} leaked images.`);
       summarySlot.append(h('p', { class: 'lede' }, verificationText(data.verification).trim()));
+      progress.textContent = reportProgress(data, count, undecidedOnly, 'leak');
       if (!leaks.length) {
+        if (undecidedOnly) return emptyState('No leak is left to review on this page.', 'Clear “Still to review” to see the decided leaks.');
         return emptyState(`No image of the evaluated splits has a copy in ${reference}.`,
           'At a lower threshold looser near-duplicates are reported too.');
       }
+      // The leak report says whether a leak is settled, the log how.
+      const fates = latestByPath(log, ['drop', 'keep']);
       const offset = (page - 1) * perPage;
       const list = h('ol', { class: 'review-list leak-grid', dataset: { testid: 'leaks' }, 'aria-label': 'Leaked pairs' });
       const fragment = document.createDocumentFragment();
-      leaks.forEach((leak, index) => fragment.append(h('li', {}, leakPair(leak, offset + index + 1, reference))));
+      leaks.forEach((leak, index) => fragment.append(h('li', {}, leakPair(leak, offset + index + 1, reference, fates, session))));
       list.append(fragment);
       makeReviewList(list);
       return [list, pager({ page, perPage, total, shown: leaks.length })];
-    });
+    };
+    const session = decisionSession(ctx, { slot: listSlot, progress, notice, load });
+
+    root.append(
+      viewHead('Leakage', `Images of the evaluated splits that have a copy or near-copy in the reference split (${against}). A leaked test image makes a model look better than it is. Keys on a pair: e drops the evaluated copy, r the reference copy, x marks it as not a copy, u undoes.`),
+      toolbar, summarySlot, decisionBar(session, progress, notice), listSlot);
+
+    await fill(ctx, listSlot, 'Comparing splits…', () => load(true));
   }
 
   function leakSummary(summary, reference) {
@@ -998,21 +1266,36 @@
       })));
   }
 
-  function leakPair(leak, number, reference) {
+  function leakPair(leak, number, reference, fates, session) {
     const leaked = imageOf(leak);
     const counterpart = imageOf(pick(leak, 'counterpart', 'reference') || {});
+    const seen = new Map([[leaked.path, leak.image_last_decision], [counterpart.path, leak.counterpart_last_decision]]);
+    const fate = (img) => fates.has(img.path) ? fates.get(img.path).action : null;
     const headingId = `leak-${number}`;
-    return h('section', { class: 'review-item', 'aria-labelledby': headingId, dataset: { path: leaked.path || '', counterpart: counterpart.path || '' } },
+    const section = h('section', {
+      class: `review-item${leak.decided ? ' is-decided' : ''}`,
+      'aria-labelledby': headingId,
+      dataset: {
+        path: leaked.path || '', counterpart: counterpart.path || '', item: `${leaked.path}|${counterpart.path}`, decided: String(Boolean(leak.decided)),
+      },
+    });
+    const decide = (requests, doneText) => session.decide(section, requests, seen, `Pair ${number}: ${doneText}.`);
+    return append(section,
       h('header', {}, h('h2', { id: headingId }, `Pair ${number}`),
+        leak.decided ? chip('decided', 'decided') : null,
         h('span', { class: 'count' }, `${leaked.split || '?'} image with a copy in ${counterpart.split || reference}`)),
       h('div', { class: 'pair' },
-        h('div', {}, h('p', { class: 'side-label' }, `Evaluated (${leaked.split || '?'})`), imageCard(leaked)),
+        h('div', {}, h('p', { class: 'side-label' }, `Evaluated (${leaked.split || '?'})`), imageCard(leaked, { decision: fate(leaked) })),
         h('div', { class: 'link' },
           h('span', { class: 'arrow', 'aria-hidden': 'true' }, '⟷'),
           h('span', { class: 'score' }, h('span', { class: 'visually-hidden' }, 'similarity '), formatScore(leak.similarity)),
           tierChip(leak.tier),
           h('span', { class: 'arrow' }, ['cosine similarity', checkText(leak.check)].filter(Boolean).join(' · '))),
-        h('div', {}, h('p', { class: 'side-label' }, `Reference (${counterpart.split || reference})`), imageCard(counterpart))));
+        h('div', {}, h('p', { class: 'side-label' }, `Reference (${counterpart.split || reference})`), imageCard(counterpart, { decision: fate(counterpart) }))),
+      h('div', { class: 'decide', role: 'group', 'aria-label': `Decide on pair ${number}` },
+        decisionButton('e', 'Drop evaluated copy', () => decide([{ action: 'drop', path: leaked.path }], `dropped ${leaked.path}`)),
+        decisionButton('r', 'Drop reference copy', () => decide([{ action: 'drop', path: counterpart.path }], `dropped ${counterpart.path}`)),
+        decisionButton('x', 'Not a copy', () => decide([{ action: 'distinct', first: leaked.path, second: counterpart.path }], 'marked as not a copy'))));
   }
 
   // ---------------------------------------------------------- Clusters
@@ -1084,29 +1367,35 @@
       .map((m) => h('a', { href: href(`/image/${encodeURIComponent(m.id)}`) }, thumb(m, 96, 'preview-img')));
   }
 
-  // Clusters whose summary lists no members get their first few fetched
-  // once the card scrolls near the screen, so hundreds of clusters cost
-  // only the requests of the cards actually looked at.
-  let previewObserver = null;
-  function watchForPreview(ctx, card, index, q, medoid) {
-    if (!previewObserver) {
-      previewObserver = new IntersectionObserver((entries) => {
+  // Pictures a card fetches for itself (a cluster's members, a label's
+  // neighbours) are fetched once it scrolls near the screen, so hundreds of
+  // cards cost only the requests of the cards actually looked at.
+  let nearScreenObserver = null;
+  const nearScreenWork = new WeakMap();
+  function whenNearScreen(element, work) {
+    if (!nearScreenObserver) {
+      nearScreenObserver = new IntersectionObserver((entries) => {
         for (const entry of entries) {
           if (!entry.isIntersecting) continue;
-          previewObserver.unobserve(entry.target);
-          entry.target.loadPreview();
+          nearScreenObserver.unobserve(entry.target);
+          nearScreenWork.get(entry.target)();
         }
       }, { rootMargin: '300px' });
     }
-    card.loadPreview = async () => {
+    nearScreenWork.set(element, work);
+    nearScreenObserver.observe(element);
+  }
+
+  /** Clusters whose summary lists no members get their first few once seen. */
+  function watchForPreview(ctx, card, index, q, medoid) {
+    whenNearScreen(card, async () => {
       try {
         const data = await api(collectionPath(`/clusters/${encodeURIComponent(index)}`) + queryString(Object.assign({ page: 1, per_page: PREVIEW_COUNT + 1 }, q)), { signal: ctx.signal });
         card.querySelector('.pictures').append(...previewLinks(listOf(data, 'items', 'members'), medoid));
       } catch (_) {
         // The medoid alone still represents the cluster.
       }
-    };
-    previewObserver.observe(card);
+    });
   }
 
   function clusterCard(ctx, cluster, q) {
@@ -1268,6 +1557,132 @@
     return box('', h('p', {}, 'Unlabelled. Suggested: ', h('strong', {}, suggested), ` (${formatPercent(confidence)} of the vote).`));
   }
 
+  // ------------------------------------------------------------ Labels
+
+  const LABEL_LISTS = {
+    suggestions: {
+      title: 'Suggestions',
+      lede: 'Unlabelled images with the label the rest of the collection suggests, most certain first. Keys on an image: a accepts the suggestion, r rejects it, u undoes.',
+      noun: 'suggestion',
+      empty: ['No label to suggest.', 'Every image is labelled, or no unlabelled image resembles one label strongly enough.'],
+    },
+    suspects: {
+      title: 'Suspect labels',
+      lede: 'Labelled images whose label the rest of the collection contradicts, most doubtful first. Keys on an image: c confirms its own label, a gives it the label the collection points to, u undoes.',
+      noun: 'suspect label',
+      empty: ['No label is in doubt.', 'The rest of the collection agrees with every label.'],
+    },
+  };
+  // Neighbours asked for per image, and how many of those carrying the label in question are shown.
+  const NEIGHBOUR_POOL = 24;
+  const ARGUING_COUNT = 4;
+
+  async function renderLabels(ctx) {
+    const { params, root } = ctx;
+    const listing = params.get('list') === 'suspects' ? 'suspects' : 'suggestions';
+    const about = LABEL_LISTS[listing];
+    const { page, perPage } = pageParams(params, 50);
+    const slot = h('div', {});
+    const { progress, notice } = decisionParts();
+    // Kept across refreshes: a decision changes no image's neighbours.
+    const neighbourRequests = new Map();
+
+    const load = async () => {
+      const [data, log] = await Promise.all([
+        api(collectionPath(`/labels/${listing}`) + queryString({ page, per_page: perPage }), { signal: ctx.signal }),
+        decisionLog(ctx),
+      ]);
+      // Where the vote abstained there is no suggestion to decide on.
+      const items = listing === 'suggestions' ? data.items.filter((item) => item.suggested_label) : data.items;
+      const given = latestByPath(log, ['label', 'reject_suggestion']);
+      const latest = latestByPath(log);
+      const decided = items.filter((item) => given.has(item.path)).length;
+      const paged = page > 1 || data.total > data.items.length;
+      progress.textContent = `${decided} of ${items.length} ${about.noun}${items.length === 1 ? '' : 's'}${paged ? ' on this page' : ''} decided`;
+      if (!items.length) return emptyState(...about.empty);
+      const list = h('ol', { class: 'review-list label-grid', dataset: { testid: listing }, 'aria-label': about.title },
+        items.map((item, index) => h('li', {}, labelItem(ctx, item, {
+          number: (page - 1) * perPage + index + 1,
+          listing,
+          given: given.get(item.path),
+          seen: new Map([[item.path, latest.get(item.path)?.number || 0]]),
+          session,
+          neighbourRequests,
+        }))));
+      makeReviewList(list);
+      return [list, pager({ page, perPage, total: data.total, shown: data.items.length })];
+    };
+    const session = decisionSession(ctx, { slot, progress, notice, load });
+
+    root.append(
+      viewHead('Labels', `${about.lede} A label given here is recorded in the store and applied to the training list; folders and files stay as they are.`),
+      h('nav', { class: 'tabs', 'aria-label': 'Label lists' }, Object.entries(LABEL_LISTS).map(([name, { title }]) =>
+        h('a', { href: href('/labels', { list: name }), 'aria-current': name === listing ? 'page' : null, dataset: { tab: name } }, title))),
+      decisionBar(session, progress, notice),
+      slot);
+    await fill(ctx, slot, `Loading ${about.title.toLowerCase()}…`, load);
+  }
+
+  function givenText(given, item) {
+    if (given.action === 'reject_suggestion') return 'suggestion rejected';
+    return given.label === item.label ? 'label confirmed' : `labelled “${given.label}”`;
+  }
+
+  /** One suggestion or suspect beside the neighbours that argue for the label it proposes. */
+  function labelItem(ctx, item, { number, listing, given, seen, session, neighbourRequests }) {
+    const proposed = item.suggested_label;
+    const headingId = `label-item-${number}`;
+    const section = h('section', {
+      class: `review-item label-item${given ? ' is-decided' : ''}`,
+      'aria-labelledby': headingId,
+      dataset: {
+        item: item.path, path: item.path, proposed: proposed || '', decided: String(Boolean(given)), given: given && given.label ? given.label : '',
+      },
+    });
+    const decide = (requests, doneText) => session.decide(section, requests, seen, `${item.path}: ${doneText}.`);
+    const giveLabel = (label) => decide([{ action: 'label', path: item.path, label }], `labelled “${label}”`);
+    const suggestion = listing === 'suggestions';
+    const strip = h('div', { class: 'neighbour-strip' });
+    append(section,
+      h('header', {},
+        h('h2', { id: headingId }, suggestion
+          ? `Suggested: ${proposed}`
+          : `Labelled ${item.label}; the collection points to ${proposed || 'no single other label'}`),
+        given ? chip(givenText(given, item), 'decided') : null,
+        h('span', { class: 'count' }, suggestion
+          ? `${formatPercent(item.confidence)} confidence`
+          : `${formatPercent(item.disagreement)} disagreement` + (proposed ? ` · “${proposed}” ${formatPercent(item.confidence)}` : ''))),
+      h('div', { class: 'label-body' }, imageCard(item), strip),
+      h('div', { class: 'decide', role: 'group', 'aria-label': `Decide on ${item.path}` }, suggestion
+        ? [decisionButton('a', `Accept “${proposed}”`, () => giveLabel(proposed)),
+          decisionButton('r', 'Reject suggestion', () => decide([{ action: 'reject_suggestion', path: item.path }], 'suggestion rejected'))]
+        : [decisionButton('c', `Confirm “${item.label}”`, () => giveLabel(item.label)),
+          decisionButton('a', proposed ? `Relabel as “${proposed}”` : 'No other label suggested', () => giveLabel(proposed), !proposed)]));
+    if (proposed) {
+      whenNearScreen(section, () => fill(ctx, strip, 'Finding neighbours…', () => arguingNeighbours(ctx, neighbourRequests, item, proposed)));
+    }
+    return section;
+  }
+
+  /** A few of the image's nearest neighbours labelled `label`: the evidence for that label. */
+  async function arguingNeighbours(ctx, requests, item, label) {
+    if (!requests.has(item.id)) {
+      const request = api(collectionPath(`/images/${encodeURIComponent(item.id)}/neighbours`) + queryString({ k: NEIGHBOUR_POOL }), { signal: ctx.signal });
+      // A failed request is made again when the list is next shown.
+      request.catch(() => requests.delete(item.id));
+      requests.set(item.id, request);
+    }
+    const { hits } = await requests.get(item.id);
+    const arguing = hits.filter((hit) => hit.id !== item.id && hit.label === label).slice(0, ARGUING_COUNT);
+    if (!arguing.length) return h('p', { class: 'kv' }, `None of its ${NEIGHBOUR_POOL} nearest neighbours is labelled “${label}”.`);
+    return h('figure', { class: 'arguing', dataset: { testid: 'arguing' } },
+      h('figcaption', {}, `Nearest neighbours labelled “${label}”`),
+      h('ul', {}, arguing.map((hit) => h('li', { dataset: { path: hit.path, label: hit.label } },
+        h('a', { href: href(`/image/${encodeURIComponent(hit.id)}`) }, thumb(hit, 88, 'neighbour-img')),
+        h('div', { class: 'chips' }, chip(hit.label, 'label')),
+        h('span', { class: 'score' }, h('span', { class: 'visually-hidden' }, 'similarity '), formatScore(hit.similarity))))));
+  }
+
   // ------------------------------------------------------------ start
 
   async function loadCollection(name) {
@@ -1292,6 +1707,8 @@
   }
 
   async function start() {
+    // Asked once: every decision is sent with it.
+    state.pageKey = api('/page-key').then((data) => data.key, () => '');
     document.addEventListener('keydown', onKeydown);
     document.querySelector('[data-skip]').addEventListener('click', (event) => {
       event.preventDefault();
