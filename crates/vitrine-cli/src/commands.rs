@@ -72,8 +72,7 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
         } => {
             let options = LeakOptions {
                 evaluated_splits: splits,
-                reference_split: against
-                    .unwrap_or_else(|| ctx.settings.queries.reference_split.clone()),
+                reference_split: against.or_else(|| ctx.settings.queries.reference_split.clone()),
                 duplicates: ctx.duplicate_options(&threshold)?,
             };
             let report = collection::open(&ctx)?.leaks(&options)?;

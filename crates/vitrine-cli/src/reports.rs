@@ -259,17 +259,37 @@ impl Report for LeakTable {
             .collect()
     }
     fn preamble(&self) -> Vec<String> {
+        let from = match &self.0.reference_split {
+            Some(reference) => reference.clone(),
+            None => "an earlier split".into(),
+        };
         let mut lines: Vec<String> = self
             .0
             .summary
             .iter()
             .map(|s| {
                 format!(
-                    "{}: {} of {} images leaked from {} ({:.1}%)",
-                    s.split, s.leaked, s.images, self.0.reference_split, s.leaked_percent
+                    "{}: {} of {} images leaked from {from} ({:.1}%)",
+                    s.split, s.leaked, s.images, s.leaked_percent
                 )
             })
             .collect();
+        if !self.0.between.is_empty() {
+            let pairs: Vec<String> = self
+                .0
+                .between
+                .iter()
+                .map(|p| format!("{} from {} {}", p.split, p.from, p.leaked))
+                .collect();
+            lines.push(format!("between splits: {}", pairs.join(", ")));
+            let labels: Vec<String> = self
+                .0
+                .per_label
+                .iter()
+                .map(|l| format!("{} {}", l.label, l.leaked))
+                .collect();
+            lines.push(format!("per label: {}", labels.join(", ")));
+        }
         let decided = self.0.leaks.iter().filter(|l| l.decided).count();
         lines.push(format!("{decided} of {} leaks decided", self.0.leaks.len()));
         if self.0.left_out_as_distinct > 0 {

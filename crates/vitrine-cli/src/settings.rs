@@ -70,7 +70,9 @@ pub struct QuerySettings {
     /// With verification, the cosine from which pairs are checked.
     pub candidate_threshold: f32,
     pub neighbours_per_image: usize,
-    pub reference_split: String,
+    /// The split `leaks` checks others against; `None`: each split against
+    /// every split before it.
+    pub reference_split: Option<String>,
 }
 
 impl Default for QuerySettings {
@@ -80,7 +82,7 @@ impl Default for QuerySettings {
             verify: true,
             candidate_threshold: vitrine_engine::duplicates::DEFAULT_CANDIDATE_THRESHOLD,
             neighbours_per_image: 10,
-            reference_split: "train".into(),
+            reference_split: None,
         }
     }
 }

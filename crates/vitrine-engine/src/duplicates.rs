@@ -554,10 +554,32 @@ pub struct SplitLeakSummary {
     pub leaked_percent: f64,
 }
 
+/// How many images of `split` have their reported copy in `from`.
+#[derive(Clone, Debug, Serialize, Deserialize)]
+pub struct SplitPairLeaks {
+    pub split: String,
+    pub from: String,
+    pub leaked: usize,
+}
+
+/// How many leaked images carry `label` (`(none)`: unlabelled).
+#[derive(Clone, Debug, Serialize, Deserialize)]
+pub struct LabelLeaks {
+    pub label: String,
+    pub leaked: usize,
+}
+
 #[derive(Clone, Debug, Serialize, Deserialize)]
 pub struct LeakReport {
-    pub reference_split: String,
+    /// The split others were checked against; `None`: each split against
+    /// every split before it (train, then val, then test, then others by name).
+    pub reference_split: Option<String>,
     pub summary: Vec<SplitLeakSummary>,
+    /// Leaked images per pair of splits: the split they are in and the split
+    /// their reported copy is in.
+    pub between: Vec<SplitPairLeaks>,
+    /// Leaked images per label.
+    pub per_label: Vec<LabelLeaks>,
     pub leaks: Vec<Leak>,
     pub verification: VerificationSummary,
     /// Pairs left out because a person decided they are not copies.
@@ -565,22 +587,15 @@ pub struct LeakReport {
 }
 
 /// Which splits to check against which.
-#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
 pub struct LeakOptions {
-    /// Splits whose images are checked; empty means every split but the reference.
+    /// Splits whose images are checked; empty means every split but the
+    /// reference (without one: every split but the first).
     pub evaluated_splits: Vec<String>,
-    pub reference_split: String,
+    /// The split others are checked against; `None`: each split against every
+    /// split before it, so a test image copied into val is a leak too.
+    pub reference_split: Option<String>,
     pub duplicates: DuplicateOptions,
-}
-
-impl Default for LeakOptions {
-    fn default() -> Self {
-        Self {
-            evaluated_splits: Vec::new(),
-            reference_split: "train".into(),
-            duplicates: DuplicateOptions::default(),
-        }
-    }
 }
 
 /// Every image of the evaluated splits with a duplicate-tier match in the
@@ -593,10 +608,6 @@ pub fn find_leaks(
     find_leaks_verified(store, catalog, options, None)
 }
 
-/// As [`find_leaks`], verifying near pairs when `options.duplicates.verify`
-/// is set and a verifier is given: each image's reference neighbours from
-/// the candidate threshold up are checked in order of similarity and the
-/// first accepted one is its counterpart.
 /// What the search for one evaluated image's leak found.
 enum LeakSearch {
     /// A reference image with the same bytes or pixels: a leak without judgement.
@@ -605,51 +616,75 @@ enum LeakSearch {
     Near(Vec<Candidate>),
 }
 
+/// The order splits are checked in without a reference split: an image
+/// leaks when a copy of it is in a split before its own (train, then val,
+/// then test, then other splits by name).
+fn split_rank(split: &str) -> (u8, &str) {
+    match split {
+        "train" => (0, ""),
+        "val" => (1, ""),
+        "test" => (2, ""),
+        other => (3, other),
+    }
+}
+
+/// As [`find_leaks`], verifying near pairs when `options.duplicates.verify`
+/// is set and a verifier is given: each image's reference neighbours from
+/// the candidate threshold up are checked in order of similarity and the
+/// first accepted one is its counterpart.
 pub fn find_leaks_verified(
     store: &Store,
     catalog: &Catalog,
     options: &LeakOptions,
     verifier: Option<&PairVerifier>,
 ) -> Result<LeakReport, EngineError> {
-    let reference = options.reference_split.as_str();
+    let reference = options.reference_split.as_deref();
     // A collection without splits has nothing to leak; in one with splits, a
     // split nobody is in is a typo, not "no leaks".
     if !catalog.splits().is_empty() {
-        for split in
-            std::iter::once(reference).chain(options.evaluated_splits.iter().map(String::as_str))
+        for split in reference
+            .into_iter()
+            .chain(options.evaluated_splits.iter().map(String::as_str))
         {
             catalog.check_split(split)?;
         }
     }
     let split_of = |row: usize| catalog.records[row].split.as_deref();
+    let mut all_splits = catalog.splits();
+    all_splits.sort_by(|a, b| split_rank(a).cmp(&split_rank(b)));
     let mut evaluated: Vec<String> = if options.evaluated_splits.is_empty() {
-        let mut splits: Vec<String> = catalog
-            .records
-            .iter()
-            .filter_map(|r| r.split.clone())
-            .filter(|s| s != reference)
-            .collect();
-        splits.sort();
-        splits.dedup();
-        splits
+        all_splits.clone()
     } else {
         options.evaluated_splits.clone()
     };
-    evaluated.retain(|s| s != reference);
-
-    let mut by_content: HashMap<[u8; 32], usize> = HashMap::new();
-    let mut by_pixels: HashMap<[u8; 32], usize> = HashMap::new();
-    for (row, record) in catalog.records.iter().enumerate() {
-        if record.split.as_deref() == Some(reference) {
-            by_content.entry(record.content_hash).or_insert(row);
-            by_pixels.entry(record.pixel_hash).or_insert(row);
-        }
+    // Checked against the reference split, or against the splits before
+    // their own: the first split has nothing before it.
+    match reference {
+        Some(reference) => evaluated.retain(|s| s != reference),
+        None => evaluated.retain(|s| all_splits.first() != Some(s)),
     }
-    let in_reference = |id: ImageId| {
-        catalog
-            .row(id)
-            .is_some_and(|row| split_of(row) == Some(reference))
+    // Whether the image at `other` can be the counterpart of the one at `row`.
+    let counterpart_split = |row: usize, other: usize| match (split_of(other), reference) {
+        (Some(other_split), Some(reference)) => other_split == reference,
+        (Some(other_split), None) => {
+            split_of(row).is_some_and(|own| split_rank(other_split) < split_rank(own))
+        }
+        (None, _) => false,
     };
+
+    // Images with a split by content and by pixels, earliest split first, so
+    // an exact copy is found in the earliest split that holds one.
+    let mut by_content: HashMap<[u8; 32], Vec<usize>> = HashMap::new();
+    let mut by_pixels: HashMap<[u8; 32], Vec<usize>> = HashMap::new();
+    let mut with_split: Vec<usize> = (0..catalog.len())
+        .filter(|&r| split_of(r).is_some())
+        .collect();
+    with_split.sort_by_key(|&row| split_of(row).map(split_rank));
+    for &row in &with_split {
+        let record = &catalog.records[row];
+        by_content.entry(record.content_hash).or_default().push(row);
+        by_pixels.entry(record.pixel_hash).or_default().push(row);
+    }
 
     let rows: Vec<usize> = (0..catalog.len())
         .filter(|&row| split_of(row).is_some_and(|s| evaluated.iter().any(|e| e == s)))
@@ -682,13 +717,17 @@ pub fn find_leaks_verified(
         .par_iter()
         .map(|&row| {
             let record = &catalog.records[row];
-            let exact = by_content
-                .get(&record.content_hash)
-                .map(|&other| (other, DuplicateTier::Bytes))
+            let first_counterpart = |rows: Option<&Vec<usize>>| {
+                rows?
+                    .iter()
+                    .copied()
+                    .find(|&other| other != row && counterpart_split(row, other))
+            };
+            let exact = first_counterpart(by_content.get(&record.content_hash))
+                .map(|other| (other, DuplicateTier::Bytes))
                 .or_else(|| {
-                    by_pixels
-                        .get(&record.pixel_hash)
-                        .map(|&other| (other, DuplicateTier::Pixels))
+                    first_counterpart(by_pixels.get(&record.pixel_hash))
+                        .map(|other| (other, DuplicateTier::Pixels))
                 });
             // A pair said to be distinct is left to the near search, which
             // finds it again (cosine 1) and leaves it out, counted once.
@@ -705,6 +744,11 @@ pub fn find_leaks_verified(
                 duplicates.neighbours_per_image.max(1)
             } else {
                 1
+            };
+            let in_reference = |id: ImageId| {
+                catalog
+                    .row(id)
+                    .is_some_and(|other| counterpart_split(row, other))
             };
             Ok(LeakSearch::Near(
                 store
@@ -772,9 +816,35 @@ pub fn find_leaks_verified(
             }
         })
         .collect();
+    let mut between: BTreeMap<(String, String), usize> = BTreeMap::new();
+    let mut per_label: BTreeMap<String, usize> = BTreeMap::new();
+    for leak in &leaks {
+        if let (Some(split), Some(other)) = (&leak.image.split, &leak.counterpart.split) {
+            *between.entry((split.clone(), other.clone())).or_default() += 1;
+        }
+        let label = leak.image.label.clone().unwrap_or_else(|| "(none)".into());
+        *per_label.entry(label).or_default() += 1;
+    }
+    let mut between: Vec<SplitPairLeaks> = between
+        .into_iter()
+        .map(|((split, from), leaked)| SplitPairLeaks {
+            split,
+            from,
+            leaked,
+        })
+        .collect();
+    between.sort_by(|a, b| {
+        (split_rank(&a.split), split_rank(&a.from))
+            .cmp(&(split_rank(&b.split), split_rank(&b.from)))
+    });
     Ok(LeakReport {
         reference_split: options.reference_split.clone(),
         summary,
+        between,
+        per_label: per_label
+            .into_iter()
+            .map(|(label, leaked)| LabelLeaks { label, leaked })
+            .collect(),
         leaks,
         verification,
         left_out_as_distinct,

@@ -41,7 +41,9 @@ pub struct ServiceConfig {
     pub index: IndexOptions,
     /// Defaults of duplicate and leak queries.
     pub duplicates: DuplicateOptions,
-    pub reference_split: String,
+    /// The default reference split of leak reports; `None`: each split
+    /// against every split before it.
+    pub reference_split: Option<String>,
 }
 
 pub struct AppState {
@@ -55,7 +57,7 @@ pub struct AppState {
     pub model: Model,
     pub index: IndexOptions,
     pub duplicates: DuplicateOptions,
-    pub reference_split: String,
+    pub reference_split: Option<String>,
     pub jobs: Arc<Jobs>,
     pub thumbnails: Thumbnails,
     pub metrics: Metrics,

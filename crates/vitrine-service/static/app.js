@@ -1176,7 +1176,9 @@
     const { params, root } = ctx;
     const { page, perPage } = pageParams(params, 50);
     const splits = splitNames();
-    const against = params.get('against') || (splits.includes('train') ? 'train' : splits[0] || 'train');
+    // No reference split (the default): each split is checked against every
+    // split before it (train, then val, then test), as the service does.
+    const against = params.get('against') || '';
     const chosen = params.getAll('split').filter((s) => s !== against);
     const near = nearSettings(params);
 
@@ -1196,7 +1198,7 @@
     });
     const toolbar = h('div', { class: 'toolbar', role: 'group', 'aria-label': 'Leakage settings' },
       h('fieldset', { class: 'field' }, h('legend', {}, 'Evaluated splits'), h('div', { class: 'checks' }, checks.length ? checks : h('span', {}, 'no other split'))),
-      selectField('against', 'Reference split', splits.map((s) => [s, s]), against,
+      selectField('against', 'Reference split', [['', 'every earlier split'], ...splits.map((s) => [s, s])], against,
         (value) => navigate(hrefWith({ against: value, split: [], page: 1 }))),
       ...nearControls(near, near.requested !== undefined ? near.requested : (near.verify ? 0.6 : 0.9)),
       perPageSelect(perPage, [25, 50, 100, 200]),
@@ -1209,17 +1211,21 @@
     const load = async (first) => {
       const [data, log] = await Promise.all([
         api(collectionPath('/leaks') + queryString({
-          split: chosen, against, ...near.query, undecided: undecidedOnly ? 'true' : undefined, page, per_page: perPage,
+          split: chosen, against: against || undefined, ...near.query, undecided: undecidedOnly ? 'true' : undefined, page, per_page: perPage,
         }), { signal: ctx.signal }),
         decisionLog(ctx),
       ]);
-      const reference = pick(data, 'reference_split') || against;
+      const reference = data.reference_split || 'an earlier split';
       const summary = listOf(data, 'summary');
       summarySlot.replaceChildren(...[leakSummary(summary, reference)].filter(Boolean));
       const leaks = listOf(data, 'leaks', 'pairs');
       const total = pick(data, 'total');
       const count = typeof total === 'number' ? total : leaks.length;
       if (first) announce(`${count} leaked images.`);
+      if (data.between.length > 1) {
+        summarySlot.append(h('p', { class: 'lede', dataset: { testid: 'leaks-between' } },
+          `Between splits: ${data.between.map((b) => `${b.leaked} ${b.split} from ${b.from}`).join(', ')}.`));
+      }
       summarySlot.append(h('p', { class: 'lede' }, verificationText(data.verification).trim()));
       progress.textContent = reportProgress(data, count, undecidedOnly, 'leak');
       if (!leaks.length) {
@@ -1240,7 +1246,7 @@
     const session = decisionSession(ctx, { slot: listSlot, progress, notice, load });
 
     root.append(
-      viewHead('Leakage', `Images of the evaluated splits that have a copy or near-copy in the reference split (${against}). A leaked test image makes a model look better than it is. Keys on a pair: e drops the evaluated copy, r the reference copy, x marks it as not a copy, u undoes.`),
+      viewHead('Leakage', `Images of the evaluated splits that have a copy or near-copy in ${against ? `the reference split (${against})` : 'a split before their own (train, then val, then test)'}. A leaked test image makes a model look better than it is. Keys on a pair: e drops the evaluated copy, r the reference copy, x marks it as not a copy, u undoes.`),
       toolbar, summarySlot, decisionBar(session, progress, notice), listSlot);
 
     await fill(ctx, listSlot, 'Comparing splits…', () => load(true));

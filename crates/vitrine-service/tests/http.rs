@@ -737,7 +737,7 @@ fn public_address_needs_a_token() -> Result<()> {
         model: vitrine_service::Model::Missing("not needed".into()),
         index: index_options(),
         duplicates: Default::default(),
-        reference_split: "train".into(),
+        reference_split: Some("train".into()),
     };
     let refused = actix_web::rt::System::new()
         .block_on(async { vitrine_service::Service::bind(config).err() });

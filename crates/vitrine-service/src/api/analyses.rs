@@ -9,8 +9,8 @@ use vitrine_engine::catalog::ImageRef;
 use vitrine_engine::decisions::Fate;
 use vitrine_engine::duplicates::{
     find_duplicates, find_leaks_verified, DuplicateGroup, DuplicateOptions, DuplicateReport,
-    DuplicateTier, Leak, LeakOptions, LeakReport, SplitLeakSummary, Verification,
-    VerificationSummary,
+    DuplicateTier, LabelLeaks, Leak, LeakOptions, LeakReport, SplitLeakSummary, SplitPairLeaks,
+    Verification, VerificationSummary,
 };
 use vitrine_engine::verify::PairVerifier;
 
@@ -453,7 +453,9 @@ pub struct LeakParams {
     pub split: Option<String>,
     /// Only the leaks a person has not settled yet.
     pub undecided: Option<bool>,
-    /// The reference split others are checked against (default from the configuration, usually `train`).
+    /// The reference split others are checked against (default from the
+    /// configuration; unset there: each split against every split before it,
+    /// train, then val, then test).
     pub against: Option<String>,
     /// Cosine similarity at or above which images are near-duplicates.
     pub threshold: Option<f32>,
@@ -523,11 +525,19 @@ impl From<&Leak> for LeakBody {
 
 #[derive(Debug, Serialize, ToSchema)]
 pub struct LeaksPage {
-    pub reference_split: String,
+    /// The split others were checked against; null: each split against every
+    /// split before it (each leak's `counterpart.split` says which).
+    pub reference_split: Option<String>,
     pub threshold: f32,
     pub candidate_threshold: f32,
     pub verification: VerificationBody,
     pub summary: Vec<SplitLeaks>,
+    /// Leaked images per pair of splits: their own and their copy's.
+    #[schema(value_type = Vec<Object>)]
+    pub between: Vec<SplitPairLeaks>,
+    /// Leaked images per label.
+    #[schema(value_type = Vec<Object>)]
+    pub per_label: Vec<LabelLeaks>,
     pub leaks: Vec<LeakBody>,
     /// Leaks in all pages (after the `undecided` filter).
     pub total: usize,
@@ -579,9 +589,7 @@ pub async fn leaks(
     evaluated_splits.dedup();
     let options = LeakOptions {
         evaluated_splits,
-        reference_split: query
-            .against
-            .unwrap_or_else(|| state.reference_split.clone()),
+        reference_split: query.against.or_else(|| state.reference_split.clone()),
         duplicates: near,
     };
     let threshold = options.duplicates.near_duplicate_threshold;
@@ -595,6 +603,8 @@ pub async fn leaks(
         .collect();
     Ok(HttpResponse::Ok().json(LeaksPage {
         reference_split: report.reference_split.clone(),
+        between: report.between.clone(),
+        per_label: report.per_label.clone(),
         threshold,
         candidate_threshold,
         verification: (&report.verification).into(),

@@ -185,7 +185,7 @@ impl Fixture {
             model: Model::Loaded(encoder()),
             index: index_options(),
             duplicates: DuplicateOptions::default(),
-            reference_split: "train".into(),
+            reference_split: Some("train".into()),
         }
     }
 }
