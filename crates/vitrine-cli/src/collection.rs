@@ -3,7 +3,7 @@
 //! engine reports with the same options (`POST …/reports`), so a command
 //! prints the same answer either way.
 
-use std::cell::RefCell;
+use std::cell::{OnceCell, RefCell};
 use std::io::Read;
 use std::path::Path;
 use std::time::{Duration, Instant};
@@ -31,6 +31,8 @@ use crate::session::Session;
 /// What the command line asks of a collection, and the decisions it records.
 pub trait Collection {
     fn status(&self, list_errors: bool) -> Result<CollectionStatus>;
+    /// The model that made the collection's embeddings, as status names it.
+    fn model(&self) -> Result<String>;
     fn neighbours(
         &self,
         of: NeighbourQuery,
@@ -135,6 +137,10 @@ impl Collection for LocalCollection<'_> {
         ))
     }
 
+    fn model(&self) -> Result<String> {
+        Ok(self.store.fingerprint().to_string())
+    }
+
     fn neighbours(
         &self,
         of: NeighbourQuery,
@@ -224,6 +230,8 @@ struct ServedCollection {
     agent: ureq::Agent,
     /// The service's write token, when the configuration or `$VITRINE_TOKEN` has one.
     token: Option<String>,
+    /// Without a token: the key the service accepts writes with, asked for once.
+    page_key: OnceCell<String>,
 }
 
 impl ServedCollection {
@@ -231,6 +239,7 @@ impl ServedCollection {
         Self {
             served,
             token,
+            page_key: OnceCell::new(),
             agent: ureq::AgentBuilder::new()
                 .timeout_connect(Duration::from_secs(5))
                 .build(),
@@ -252,6 +261,18 @@ impl ServedCollection {
             "{}/api/v1/collections/{}{suffix}",
             self.served.url, self.served.collection
         )
+    }
+
+    fn page_key(&self) -> Result<&str> {
+        #[derive(serde::Deserialize)]
+        struct PageKey {
+            key: String,
+        }
+        if let Some(key) = self.page_key.get() {
+            return Ok(key);
+        }
+        let fetched: PageKey = self.get(&format!("{}/api/v1/page-key", self.served.url))?;
+        Ok(self.page_key.get_or_init(|| fetched.key))
     }
 
     fn get<T: DeserializeOwned>(&self, url: &str) -> Result<T> {
@@ -331,6 +352,10 @@ impl Collection for ServedCollection {
         self.ask(&Question::Status { list_errors })
     }
 
+    fn model(&self) -> Result<String> {
+        Ok(self.status(false)?.model)
+    }
+
     fn neighbours(
         &self,
         of: NeighbourQuery,
@@ -373,14 +398,10 @@ impl Collection for ServedCollection {
                 .agent
                 .post(&url)
                 .set("Authorization", &format!("Bearer {token}")),
-            None => {
-                let key: serde_json::Value =
-                    self.get(&format!("{}/api/v1/page-key", self.served.url))?;
-                let key = key["key"]
-                    .as_str()
-                    .context("the service sent no page key")?;
-                self.agent.post(&url).set("X-Vitrine-Page-Key", key)
-            }
+            None => self
+                .agent
+                .post(&url)
+                .set("X-Vitrine-Page-Key", self.page_key()?),
         };
         self.answer(call.send_json(body))
     }

@@ -237,7 +237,7 @@ fn similar(ctx: &Session, args: &SimilarArgs) -> Result<()> {
 /// collection's own model.
 fn outside_query(ctx: &Session, collection: &dyn Collection, file: &Path) -> Result<Vec<f32>> {
     let encoder = ctx.encoder()?;
-    let stored = collection.status(false)?.model;
+    let stored = collection.model()?;
     let loaded = fingerprint_of(&encoder).to_string();
     if stored != loaded {
         bail!("the collection was made with {stored}, the loaded model is {loaded}");

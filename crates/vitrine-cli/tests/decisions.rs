@@ -35,6 +35,21 @@ fn ok(fx: &Fixture, args: &[&str]) -> String {
     String::from_utf8(out.stdout).unwrap()
 }
 
+/// `vitrine export --format FORMAT --output FILE`; the file's text.
+fn export(fx: &Fixture, format: &str, file: &Path) -> String {
+    ok(
+        fx,
+        &[
+            "export",
+            "--format",
+            format,
+            "--output",
+            file.to_str().unwrap(),
+        ],
+    );
+    std::fs::read_to_string(file).unwrap()
+}
+
 fn refused(fx: &Fixture, args: &[&str]) -> String {
     let out = fx.command(args).env("USER", "curator").output().unwrap();
     assert!(!out.status.success(), "{args:?} was accepted");
@@ -224,34 +239,16 @@ fn decisions_settle_reports_and_the_exported_manifest_reindexes_clean() {
 
     // The exported list, against the folders.
     let manifest = fx.dir.path().join("clean.csv");
-    ok(
-        &fx,
-        &[
-            "export",
-            "--format",
-            "manifest",
-            "--output",
-            manifest.to_str().unwrap(),
-        ],
-    );
+    let manifest_text = export(&fx, "manifest", &manifest);
     let expected = expected_manifest(
         &images,
         &["train/dog/copy-of-0.png", "test/cat/leaked-0.png"],
         &[("unsorted/8.png", "cat")],
     );
-    assert_eq!(std::fs::read_to_string(&manifest).unwrap(), expected);
+    assert_eq!(manifest_text, expected);
     let audit = fx.dir.path().join("decisions.jsonl");
-    ok(
-        &fx,
-        &[
-            "export",
-            "--format",
-            "decisions-jsonl",
-            "--output",
-            audit.to_str().unwrap(),
-        ],
-    );
-    assert_eq!(std::fs::read_to_string(&audit).unwrap().lines().count(), 6);
+    let audit_text = export(&fx, "decisions-jsonl", &audit);
+    assert_eq!(audit_text.lines().count(), 6);
 
     // Re-indexed from the list: the decisions follow their files.
     ok(
@@ -284,19 +281,8 @@ fn decisions_settle_reports_and_the_exported_manifest_reindexes_clean() {
     let log = json(&fx, &["decide", "list"]);
     assert_eq!(log[1]["stale"], true, "{log}");
     assert_eq!(log[0]["stale"], false);
-    ok(
-        &fx,
-        &[
-            "export",
-            "--format",
-            "manifest",
-            "--output",
-            manifest.to_str().unwrap(),
-        ],
-    );
-    assert!(std::fs::read_to_string(&manifest)
-        .unwrap()
-        .contains("test/cat/leaked-0.png,,"));
+    let manifest_text = export(&fx, "manifest", &manifest);
+    assert!(manifest_text.contains("test/cat/leaked-0.png,,"));
 }
 
 /// Sends a decision to the service; the status and the JSON answer.
@@ -456,20 +442,8 @@ fn decisions_over_http_are_guarded_race_free_and_durable() {
         .unwrap();
     assert!(!served_manifest.contains("unsorted/8.png"));
     let through_service = fx.dir.path().join("through-service.csv");
-    ok(
-        &fx,
-        &[
-            "export",
-            "--format",
-            "manifest",
-            "--output",
-            through_service.to_str().unwrap(),
-        ],
-    );
-    assert_eq!(
-        std::fs::read_to_string(&through_service).unwrap(),
-        served_manifest
-    );
+    let through_service_text = export(&fx, "manifest", &through_service);
+    assert_eq!(through_service_text, served_manifest);
 
     // A kill right after acknowledged decisions loses none of them.
     let mut service = service;
@@ -478,17 +452,8 @@ fn decisions_over_http_are_guarded_race_free_and_durable() {
     let listed = json(&fx, &["decide", "list"]);
     assert_eq!(listed.as_array().unwrap().len(), 7);
     let exported = fx.dir.path().join("list.csv");
-    ok(
-        &fx,
-        &[
-            "export",
-            "--format",
-            "manifest",
-            "--output",
-            exported.to_str().unwrap(),
-        ],
-    );
-    assert_eq!(std::fs::read_to_string(&exported).unwrap(), served_manifest);
+    let exported_text = export(&fx, "manifest", &exported);
+    assert_eq!(exported_text, served_manifest);
     let (service, url) = start_service(&fx);
     let log = get(&format!("{url}/api/v1/collections/store/decisions"));
     assert_eq!(

@@ -341,19 +341,18 @@ impl DecisionState {
     /// The number of the latest decision in effect on any of `images`, so that
     /// a reviewer who saw another state can be told (0: none).
     pub fn latest_on(&self, images: &[ImageId], catalog: &Catalog) -> u64 {
-        let ids: HashSet<ImageId> = images.iter().copied().collect();
         let hashes: HashSet<[u8; 32]> = images
             .iter()
             .filter_map(|&id| catalog.record(id).map(|r| r.content_hash))
             .collect();
-        let on_image = |map_number: Option<u64>| map_number.unwrap_or(0);
-        let mut latest = 0;
-        for id in &ids {
-            latest = latest
-                .max(on_image(self.fates.get(id).map(|e| e.1)))
-                .max(on_image(self.labels.get(id).map(|e| e.1)))
-                .max(on_image(self.splits.get(id).map(|e| e.1)));
-        }
+        let on_images = images.iter().flat_map(|id| {
+            [
+                self.fates.get(id).map(|e| e.1),
+                self.labels.get(id).map(|e| e.1),
+                self.splits.get(id).map(|e| e.1),
+            ]
+        });
+        let mut latest = on_images.flatten().max().unwrap_or(0);
         for ((a, b), number) in &self.distinct {
             if hashes.contains(a) || hashes.contains(b) {
                 latest = latest.max(*number);
