@@ -105,6 +105,15 @@ pub enum Command {
         #[arg(long, value_name = "FILE")]
         output: Option<PathBuf>,
     },
+    /// Embed part I of N of the images under the roots, without a store, into
+    /// one Parquet file (for running the forward passes on many machines).
+    Shard(ShardArgs),
+    /// Build or update the collection from shard files, without a forward pass.
+    Merge {
+        /// Parquet files written by `shard` (or `export --format parquet`).
+        #[arg(required = true, value_name = "FILE")]
+        files: Vec<PathBuf>,
+    },
     /// Serve the collections over HTTP: JSON API, metrics and the page.
     Serve(ServeArgs),
     /// Measure near-duplicate thresholds on copies of a sample, edited in
@@ -195,6 +204,9 @@ pub enum ExportFormat {
     DecisionsCsv,
     /// The decision log as JSON Lines.
     DecisionsJsonl,
+    /// Every image's record and embedding, and every failed file, in the
+    /// Parquet layout of `shard` (needs --output).
+    Parquet,
 }
 
 #[derive(Subcommand, Debug)]
@@ -335,6 +347,19 @@ pub struct IndexArgs {
     /// Images per forward pass.
     #[arg(long)]
     pub batch_size: Option<usize>,
+}
+
+#[derive(Args, Debug)]
+pub struct ShardArgs {
+    /// Which part: I/N, counted from 0 (0/4 is the first of four). Files are
+    /// assigned by a hash of their path relative to the root.
+    #[arg(long, value_name = "I/N")]
+    pub part: String,
+    /// The Parquet file to write (atomically: a killed run leaves none).
+    #[arg(long, value_name = "FILE")]
+    pub output: PathBuf,
+    #[command(flatten)]
+    pub index: IndexArgs,
 }
 
 #[derive(Args, Debug)]

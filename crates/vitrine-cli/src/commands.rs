@@ -12,21 +12,25 @@ use vitrine_engine::catalog::Catalog;
 use vitrine_engine::clusters::ClusterOptions;
 use vitrine_engine::decisions::{self, Request};
 use vitrine_engine::duplicates::LeakOptions;
-use vitrine_engine::ingest::{fingerprint_of, index_roots, resolve_roots, IndexOptions};
+use vitrine_engine::ingest::{
+    fingerprint_of, index_roots, resolve_roots, IndexOptions, IndexReport,
+};
 use vitrine_engine::labels::LabelOptions;
 use vitrine_engine::neighbours::NeighbourFilter;
 use vitrine_engine::questions::NeighbourQuery;
+use vitrine_engine::shards::{check_same_model, embed_shard, from_store, ShardMerge, ShardPart};
 use vitrine_engine::splits::SplitRule;
 use vitrine_engine::walk::WalkOptions;
 use vitrine_imaging::PreprocessSpec;
 use vitrine_model::config::Pooling;
 use vitrine_model::families::{import_checkpoint, FamilyHints, ImportSettings};
 use vitrine_model::fetch::fetch_default_model;
+use vitrine_parquet::{read_header, read_shard, write_shard};
 use vitrine_store::Store;
 
 use crate::args::{
     Cli, Command, DecideCommand, ExportFormat, ImportArgs, IndexArgs, LabelCommand, ModelCommand,
-    NormalisationArg, PoolingArg, ServeArgs, SimilarArgs, ThresholdArgs,
+    NormalisationArg, PoolingArg, ServeArgs, ShardArgs, SimilarArgs, ThresholdArgs,
 };
 use crate::collection::{self, Collection};
 use crate::output::{emit, Format, OutputArgs};
@@ -106,6 +110,8 @@ pub fn run(cli: Cli) -> Result<ExitCode> {
         }
         Command::Decide(command) => decide(&ctx, command)?,
         Command::Export { format, output } => export(&ctx, format, output)?,
+        Command::Shard(args) => shard(&ctx, &args)?,
+        Command::Merge { files } => merge(&ctx, &files)?,
         Command::Serve(args) => serve(&ctx, &args)?,
         Command::Calibrate {
             sample,
@@ -156,8 +162,9 @@ fn embed_files(ctx: &Session, files: &[PathBuf]) -> Result<()> {
     Ok(())
 }
 
-fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
-    let encoder = ctx.encoder()?;
+/// What `index` and `shard` read from their shared arguments and the
+/// configuration.
+fn index_options(ctx: &Session, args: &IndexArgs) -> Result<IndexOptions> {
     let split_rule = match &args.manifest {
         Some(path) => SplitRule::from_manifest(path)?,
         None => SplitRule::FolderConvention,
@@ -174,6 +181,12 @@ fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
         batch_size: args.batch_size.unwrap_or(ctx.settings.index.batch_size),
         commit_every: ctx.settings.index.commit_every,
     };
+    Ok(options)
+}
+
+fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
+    let encoder = ctx.encoder()?;
+    let options = index_options(ctx, args)?;
     // index_roots checks the roots again; checking them before the store is
     // created means a refused run leaves no new, empty store behind.
     resolve_roots(&args.roots, &options)?;
@@ -198,15 +211,88 @@ fn index(ctx: &Session, args: &IndexArgs) -> Result<()> {
         started.elapsed().as_secs_f64(),
         store.len()
     );
-    println!(
-        "time: decode and preprocess {:.1} s, forward passes {:.1} s, store {:.1} s",
-        report.decode_seconds, report.forward_seconds, report.store_seconds
-    );
+    print_times(&report);
     if report.failed > 0 {
         println!("see `vitrine status --errors` for the files that failed");
     }
     if report.skipped_symlinks > 0 {
         println!("symbolic links are not followed; --follow-symlinks follows them");
+    }
+    Ok(())
+}
+
+fn print_times(report: &IndexReport) {
+    println!(
+        "time: decode and preprocess {:.1} s, forward passes {:.1} s, store {:.1} s",
+        report.decode_seconds, report.forward_seconds, report.store_seconds
+    );
+}
+
+fn shard(ctx: &Session, args: &ShardArgs) -> Result<()> {
+    let part: ShardPart = args.part.parse()?;
+    let encoder = ctx.encoder()?;
+    let options = index_options(ctx, &args.index)?;
+    let started = std::time::Instant::now();
+    let (shard, report) = embed_shard(
+        &encoder,
+        &args.index.roots,
+        &options,
+        part,
+        &StderrProgress::new(),
+    )?;
+    write_shard(&args.output, &shard)?;
+    println!(
+        "part {part}: {} images embedded, {} failed, {} non-image files skipped; written to {} in {:.1} s",
+        shard.images.len(),
+        shard.failures.len(),
+        report.skipped_non_images,
+        args.output.display(),
+        started.elapsed().as_secs_f64()
+    );
+    print_times(&report);
+    Ok(())
+}
+
+fn merge(ctx: &Session, files: &[PathBuf]) -> Result<()> {
+    // Every file is checked before the store is touched: a shard of another
+    // model, or a file that is not a shard, leaves the store as it was.
+    let mut headers = Vec::with_capacity(files.len());
+    for file in files {
+        headers.push(read_header(file)?);
+    }
+    let fingerprint = &headers[0].fingerprint;
+    for (file, header) in files.iter().zip(&headers) {
+        check_same_model(fingerprint, &header.fingerprint).with_context(|| {
+            format!(
+                "{} and {} cannot be merged",
+                files[0].display(),
+                file.display()
+            )
+        })?;
+    }
+    let mut store = Store::create_or_open(&ctx.global.store, fingerprint)
+        .map_err(|err| collection::opening_failed(&ctx.global.store, err))?;
+    let started = std::time::Instant::now();
+    let mut merging = ShardMerge::new(&mut store, ctx.settings.index.commit_every);
+    for (file, header) in files.iter().zip(&headers) {
+        merging
+            .check_model(&header.fingerprint)
+            .with_context(|| format!("{} cannot be merged into this collection", file.display()))?;
+    }
+    for file in files {
+        let shard = read_shard(file)?;
+        merging
+            .add(&shard, &StderrProgress::new())
+            .with_context(|| format!("while merging {}", file.display()))?;
+    }
+    let report = merging.finish()?;
+    println!(
+        "{report} in {:.1} s; {} images in the collection",
+        started.elapsed().as_secs_f64(),
+        store.len()
+    );
+    if report.failed > 0 {
+        println!("see `vitrine status --errors` for the files that failed");
     }
     Ok(())
 }
@@ -295,6 +381,19 @@ fn decide(ctx: &Session, command: DecideCommand) -> Result<()> {
 }
 
 fn export(ctx: &Session, format: ExportFormat, output: Option<PathBuf>) -> Result<()> {
+    if let ExportFormat::Parquet = format {
+        let path = output.context("--format parquet writes a file: give it with --output FILE")?;
+        let store = ctx.open_store()?;
+        let shard = from_store(&store)?;
+        write_shard(&path, &shard)?;
+        println!(
+            "{} images and {} failed files written to {}",
+            shard.images.len(),
+            shard.failures.len(),
+            path.display()
+        );
+        return Ok(());
+    }
     let collection = collection::open(ctx)?;
     let with_format = |format| OutputArgs {
         format,
@@ -318,6 +417,7 @@ fn export(ctx: &Session, format: ExportFormat, output: Option<PathBuf>) -> Resul
             &DecisionTable(collection.decisions()?),
             &with_format(Format::Jsonl),
         ),
+        ExportFormat::Parquet => unreachable!("written above, without a collection"),
     }
 }
 

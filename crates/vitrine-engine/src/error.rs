@@ -57,6 +57,15 @@ pub enum EngineError {
     UnknownPath(String),
     #[error("the collection's embeddings were made by {stored}, but the loaded model is {loaded}")]
     ModelNotCollectionModel { stored: String, loaded: String },
+    #[error(
+        "these embeddings were made by {found}, but the collection's are by {expected} \
+         (they differ in {differing}); embeddings of two models never mix"
+    )]
+    ShardOfAnotherModel {
+        expected: String,
+        found: String,
+        differing: String,
+    },
     #[error("invalid argument: {0}")]
     InvalidArgument(String),
     #[error("no image is in split `{split}`; {}", known_names("splits", known))]

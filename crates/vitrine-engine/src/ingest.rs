@@ -114,9 +114,9 @@ pub(crate) fn counted(n: usize, singular: &str, plural: &str) -> String {
 }
 
 /// A file to (re-)embed.
-struct Pending {
-    file: FoundFile,
-    replaces: Option<ImageId>,
+pub(crate) struct Pending {
+    pub(crate) file: FoundFile,
+    pub(crate) replaces: Option<ImageId>,
 }
 
 /// File name extensions that announce an image. A file without one whose
@@ -152,7 +152,7 @@ struct Decoded {
     known_embedding: Option<Vec<f32>>,
 }
 
-fn now_unix_s() -> i64 {
+pub(crate) fn now_unix_s() -> i64 {
     SystemTime::now()
         .duration_since(UNIX_EPOCH)
         .map_or(0, |d| d.as_secs() as i64)
@@ -308,7 +308,7 @@ fn index_one_root(
 
     progress.begin("images", pending.len() as u64);
     for chunk in pending.chunks(options.commit_every.max(1)) {
-        let changes = embed_chunk(store, encoder, root_id, chunk, options, report)?;
+        let changes = embed_chunk(Some(store), encoder, root_id, chunk, options, report)?;
         let committing = Instant::now();
         store.commit(changes)?;
         report.store_seconds += committing.elapsed().as_secs_f64();
@@ -340,9 +340,10 @@ fn index_one_root(
 }
 
 /// Decodes a chunk in parallel, embeds what needs it in batches, and returns
-/// the changes to commit.
-fn embed_chunk(
-    store: &Store,
+/// the changes to commit. With a store, files whose bytes it already holds
+/// reuse their embedding; without one (a shard), every file is embedded.
+pub(crate) fn embed_chunk(
+    store: Option<&Store>,
     encoder: &Encoder,
     root_id: u32,
     chunk: &[Pending],
@@ -450,7 +451,7 @@ fn with_causes(error: &dyn std::error::Error) -> String {
 
 /// Reads, hashes, decodes and preprocesses one file.
 fn decode_one(
-    store: &Store,
+    store: Option<&Store>,
     pending_index: usize,
     pending: &Pending,
     root_id: u32,
@@ -498,9 +499,10 @@ fn decode_one(
         split: assigned.split,
         label: assigned.label,
     };
-    let known_embedding = match store.embedding_by_content_hash(&content_hash) {
-        Ok(known) => known,
-        Err(e) => return fail(with_causes(&e)),
+    let known_embedding = match store.map(|store| store.embedding_by_content_hash(&content_hash)) {
+        None => None,
+        Some(Ok(known)) => known,
+        Some(Err(e)) => return fail(with_causes(&e)),
     };
     let prepared = match known_embedding {
         Some(_) => None,

@@ -15,6 +15,7 @@ pub mod labels;
 pub mod neighbours;
 pub mod progress;
 pub mod questions;
+pub mod shards;
 pub mod splits;
 pub mod status;
 pub mod verify;
