@@ -110,8 +110,9 @@ pub enum Command {
     Shard(ShardArgs),
     /// Build or update the collection from shard files, without a forward pass.
     Merge {
-        /// Parquet files written by `shard` (or `export --format parquet`).
-        #[arg(required = true, value_name = "FILE")]
+        /// Parquet files written by `shard` (or `export --format parquet`), or
+        /// folders: every `.parquet` file directly inside them.
+        #[arg(required = true, value_name = "FILE_OR_DIR")]
         files: Vec<PathBuf>,
     },
     /// Serve the collections over HTTP: JSON API, metrics and the page.
@@ -355,9 +356,10 @@ pub struct ShardArgs {
     /// assigned by a hash of their path relative to the root.
     #[arg(long, value_name = "I/N")]
     pub part: String,
-    /// The Parquet file to write (atomically: a killed run leaves none).
-    #[arg(long, value_name = "FILE")]
-    pub output: PathBuf,
+    /// The folder to write `part-I-of-N.parquet` into (atomically: a killed
+    /// run leaves no file under that name).
+    #[arg(long, value_name = "DIR")]
+    pub out: PathBuf,
     #[command(flatten)]
     pub index: IndexArgs,
 }

@@ -240,24 +240,58 @@ fn shard(ctx: &Session, args: &ShardArgs) -> Result<()> {
         part,
         &StderrProgress::new(),
     )?;
-    write_shard(&args.output, &shard)?;
+    std::fs::create_dir_all(&args.out)
+        .with_context(|| format!("cannot create the folder {}", args.out.display()))?;
+    let output = args
+        .out
+        .join(format!("part-{}-of-{}.parquet", part.index, part.count));
+    write_shard(&output, &shard)?;
     println!(
         "part {part}: {} images embedded, {} failed, {} non-image files skipped; written to {} in {:.1} s",
         shard.images.len(),
         shard.failures.len(),
         report.skipped_non_images,
-        args.output.display(),
+        output.display(),
         started.elapsed().as_secs_f64()
     );
     print_times(&report);
     Ok(())
 }
 
-fn merge(ctx: &Session, files: &[PathBuf]) -> Result<()> {
+/// The shard files named, with each folder replaced by the `.parquet` files
+/// directly inside it, by name (a writer's hidden temporary files left out).
+fn shard_files(named: &[PathBuf]) -> Result<Vec<PathBuf>> {
+    let mut files = Vec::new();
+    for path in named {
+        if !path.is_dir() {
+            files.push(path.clone());
+            continue;
+        }
+        let mut inside = Vec::new();
+        for entry in std::fs::read_dir(path)
+            .with_context(|| format!("cannot list the folder {}", path.display()))?
+        {
+            let file = entry?.path();
+            let name = file.file_name().and_then(|n| n.to_str()).unwrap_or("");
+            if name.ends_with(".parquet") && !name.starts_with('.') {
+                inside.push(file);
+            }
+        }
+        if inside.is_empty() {
+            bail!("the folder {} holds no .parquet file", path.display());
+        }
+        inside.sort();
+        files.extend(inside);
+    }
+    Ok(files)
+}
+
+fn merge(ctx: &Session, named: &[PathBuf]) -> Result<()> {
+    let files = shard_files(named)?;
     // Every file is checked before the store is touched: a shard of another
     // model, or a file that is not a shard, leaves the store as it was.
     let mut headers = Vec::with_capacity(files.len());
-    for file in files {
+    for file in &files {
         headers.push(read_header(file)?);
     }
     let fingerprint = &headers[0].fingerprint;
@@ -279,7 +313,7 @@ fn merge(ctx: &Session, files: &[PathBuf]) -> Result<()> {
             .check_model(&header.fingerprint)
             .with_context(|| format!("{} cannot be merged into this collection", file.display()))?;
     }
-    for file in files {
+    for file in &files {
         let shard = read_shard(file)?;
         merging
             .add(&shard, &StderrProgress::new())

@@ -7,12 +7,11 @@
 
 mod common;
 
-use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 use std::process::Command;
 use std::time::Duration;
 
-use common::{write_image, Fixture};
+use common::{by_paths, write_image, Fixture};
 use serde_json::Value;
 use vitrine_engine::shards::Shard;
 
@@ -49,19 +48,17 @@ fn succeed(out: std::process::Output) -> String {
 
 /// Writes every part into `folder`, returns the files in part order.
 fn write_parts(fx: &Fixture, folder: &Path) -> Vec<PathBuf> {
-    std::fs::create_dir_all(folder).unwrap();
     (0..PARTS)
         .map(|index| {
-            let file = folder.join(format!("part-{index}.parquet"));
             succeed(fx.run(&[
                 "shard",
                 "--part",
                 &format!("{index}/{PARTS}"),
-                "--output",
-                file.to_str().unwrap(),
+                "--out",
+                folder.to_str().unwrap(),
                 fx.images().to_str().unwrap(),
             ]));
-            file
+            folder.join(format!("part-{index}-of-{PARTS}.parquet"))
         })
         .collect()
 }
@@ -88,52 +85,14 @@ fn json(fx: &Fixture, store: &Path, args: &[&str]) -> Value {
     serde_json::from_str(&succeed(command.output().unwrap())).unwrap()
 }
 
-/// A report with image ids replaced by paths (ids are assigned in commit
-/// order, which differs between a merge and an index run).
-fn by_paths(report: &Value) -> Value {
-    let mut paths = BTreeMap::new();
-    collect_paths(report, &mut paths);
-    let mut named = report.clone();
-    rename_ids(&mut named, &paths);
-    named
-}
-
-fn collect_paths(value: &Value, paths: &mut BTreeMap<u64, String>) {
-    match value {
-        Value::Object(map) => {
-            if let (Some(id), Some(path)) = (map.get("id").and_then(Value::as_u64), map.get("path"))
-            {
-                paths.insert(id, path.as_str().unwrap().to_owned());
-            }
-            map.values().for_each(|v| collect_paths(v, paths));
-        }
-        Value::Array(items) => items.iter().for_each(|v| collect_paths(v, paths)),
-        _ => {}
-    }
-}
-
-fn rename_ids(value: &mut Value, paths: &BTreeMap<u64, String>) {
-    match value {
-        Value::Object(map) => {
-            for key in ["id", "copy_of", "keeper"] {
-                if let Some(id) = map.get(key).and_then(Value::as_u64) {
-                    map.insert(key.into(), Value::String(paths[&id].clone()));
-                }
-            }
-            map.values_mut().for_each(|v| rename_ids(v, paths));
-        }
-        Value::Array(items) => items.iter_mut().for_each(|v| rename_ids(v, paths)),
-        _ => {}
-    }
-}
-
 #[test]
 fn merged_parts_make_the_store_one_index_run_makes() {
     let fx = Fixture::new();
     fill_images(&fx);
     let files = write_parts(&fx, &fx.dir.path().join("shards"));
     let merged = fx.dir.path().join("merged");
-    let summary = merge(&fx, &merged, &files);
+    // A folder stands for the shard files in it.
+    let summary = merge(&fx, &merged, &[fx.dir.path().join("shards")]);
     assert!(summary.contains("3 shards merged: 38 new"), "{summary}");
     let indexed = fx.store();
     fx.index();
@@ -145,10 +104,14 @@ fn merged_parts_make_the_store_one_index_run_makes() {
     assert_eq!(from_shards.failures.len(), 1);
     assert_eq!(from_shards, from_index);
 
-    // So are the reports, once ids are named by path.
+    // So are the reports, once ids are named by path (clusters and labels
+    // read rows in path order, so they need nothing more).
     for args in [
         &["duplicates", "--threshold", "1", "--no-verify"][..],
         &["leaks", "--threshold", "1", "--no-verify"][..],
+        &["clusters", "-k", "4"][..],
+        &["labels", "suggest", "--min-confidence", "0"][..],
+        &["labels", "suspects"][..],
     ] {
         let shards_report = by_paths(&json(&fx, &merged, args));
         let index_report = by_paths(&json(&fx, &indexed, args));
@@ -258,13 +221,14 @@ fn a_shard_of_another_model_is_refused_and_the_store_is_untouched() {
         "--resize",
         "36",
     ]));
-    let foreign = fx.dir.path().join("foreign.parquet");
+    let foreign_folder = fx.dir.path().join("foreign");
+    let foreign = foreign_folder.join("part-0-of-1.parquet");
     let out = Command::new(common::BIN)
         .arg("--model")
         .arg(&other_model)
         .env("VITRINE_CONFIG", fx.dir.path().join("vitrine.toml"))
-        .args(["shard", "--part", "0/1", "--output"])
-        .arg(&foreign)
+        .args(["shard", "--part", "0/1", "--out"])
+        .arg(&foreign_folder)
         .arg(fx.images())
         .output()
         .unwrap();
@@ -295,7 +259,7 @@ fn a_shard_of_another_model_is_refused_and_the_store_is_untouched() {
     assert!(!fresh.exists());
 
     // A part that is not I/N with I < N is refused, naming the form.
-    let out = fx.run(&["shard", "--part", "3/3", "--output", "x.parquet", "."]);
+    let out = fx.run(&["shard", "--part", "3/3", "--out", "parts", "."]);
     assert!(!out.status.success());
     assert!(String::from_utf8_lossy(&out.stderr).contains("I/N"));
 }

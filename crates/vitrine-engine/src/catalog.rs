@@ -22,7 +22,10 @@ pub struct ImageRef {
 }
 
 /// Records and embeddings of every image, with row `i` of `embeddings`
-/// belonging to `ids[i]`.
+/// belonging to `ids[i]`. Rows are in the order of root folder and path, so
+/// that answers which break ties by row are the same for every store that
+/// holds the same files, whatever ids the images got (a merged store numbers
+/// them in another order than an index run).
 pub struct Catalog {
     pub ids: Vec<ImageId>,
     pub records: Vec<ImageRecord>,
@@ -35,13 +38,28 @@ pub struct Catalog {
 
 impl Catalog {
     pub fn load(store: &Store) -> Result<Self, EngineError> {
-        let (ids, embeddings) = store.all_embeddings()?;
+        let (stored_ids, stored_embeddings) = store.all_embeddings()?;
         let dim = store.fingerprint().dim;
-        let mut records = Vec::with_capacity(ids.len());
-        for &id in &ids {
+        let roots: HashMap<u32, PathBuf> = store.roots().into_iter().collect();
+        let mut stored_records = Vec::with_capacity(stored_ids.len());
+        for &id in &stored_ids {
             let record = store.record(id)?.ok_or(EngineError::UnknownImage(id))?;
-            records.push(record);
+            stored_records.push(record);
         }
+        let mut order: Vec<usize> = (0..stored_ids.len()).collect();
+        order.sort_by(|&a, &b| {
+            let place = |i: usize| {
+                let record: &ImageRecord = &stored_records[i];
+                (roots.get(&record.root), &record.rel_path)
+            };
+            place(a).cmp(&place(b))
+        });
+        let ids: Vec<ImageId> = order.iter().map(|&i| stored_ids[i]).collect();
+        let mut embeddings = Vec::with_capacity(stored_embeddings.len());
+        for &i in &order {
+            embeddings.extend_from_slice(&stored_embeddings[i * dim..(i + 1) * dim]);
+        }
+        let records = order.iter().map(|&i| stored_records[i].clone()).collect();
         let row_of = ids.iter().enumerate().map(|(row, &id)| (id, row)).collect();
         Ok(Self {
             ids,
@@ -49,8 +67,29 @@ impl Catalog {
             embeddings,
             dim,
             row_of,
-            roots: store.roots().into_iter().collect(),
+            roots,
         })
+    }
+
+    /// The `k` rows nearest to `query` among the images `filter` accepts,
+    /// most similar first. Images tied in similarity (the identical
+    /// embeddings of byte copies) are ordered by row, and the graph is asked
+    /// for a few more than `k`, so that the cut at `k` falls by path too.
+    pub fn nearest_rows(
+        &self,
+        store: &Store,
+        query: &[f32],
+        k: usize,
+        filter: Option<&dyn Fn(ImageId) -> bool>,
+    ) -> Result<Vec<(usize, f32)>, EngineError> {
+        let mut rows: Vec<(usize, f32)> = store
+            .search(query, k + TIED_EXTRA, filter)?
+            .into_iter()
+            .filter_map(|(id, similarity)| Some((self.row(id)?, similarity)))
+            .collect();
+        rows.sort_by(|a, b| b.1.total_cmp(&a.1).then(a.0.cmp(&b.0)));
+        rows.truncate(k);
+        Ok(rows)
     }
 
     pub fn len(&self) -> usize {
@@ -149,6 +188,10 @@ impl Catalog {
         dot(self.embedding_at(a), self.embedding_at(b))
     }
 }
+
+/// Neighbours asked for beyond `k` in [`Catalog::nearest_rows`]: within the
+/// graph's search width (64), so they cost no extra search steps.
+const TIED_EXTRA: usize = 8;
 
 fn distinct<'a>(values: impl Iterator<Item = &'a str>) -> Vec<String> {
     let set: BTreeSet<&str> = values.collect();

@@ -361,7 +361,8 @@ fn near_candidates(
     let per_row: Vec<Result<Vec<Candidate>, EngineError>> = (0..catalog.len())
         .into_par_iter()
         .map(|row| {
-            let hits = store.search(
+            let hits = catalog.nearest_rows(
+                store,
                 catalog.embedding_at(row),
                 options.neighbours_per_image + 1,
                 None,
@@ -369,8 +370,7 @@ fn near_candidates(
             Ok(hits
                 .into_iter()
                 .filter(|&(_, similarity)| similarity >= floor)
-                .filter_map(|(id, similarity)| {
-                    let other = catalog.row(id)?;
+                .filter_map(|(other, similarity)| {
                     // Exact copies are linked by their hashes already.
                     let exact = tier_between(catalog, row, other) != DuplicateTier::Near;
                     (other > row && !exact).then_some(Candidate {
@@ -751,16 +751,14 @@ pub fn find_leaks_verified(
                     .is_some_and(|other| counterpart_split(row, other))
             };
             Ok(LeakSearch::Near(
-                store
-                    .search(catalog.embedding_at(row), depth, Some(&in_reference))?
+                catalog
+                    .nearest_rows(store, catalog.embedding_at(row), depth, Some(&in_reference))?
                     .into_iter()
                     .filter(|&(_, similarity)| similarity >= floor)
-                    .filter_map(|(id, similarity)| {
-                        Some(Candidate {
-                            first: row,
-                            second: catalog.row(id)?,
-                            similarity,
-                        })
+                    .map(|(second, similarity)| Candidate {
+                        first: row,
+                        second,
+                        similarity,
                     })
                     .collect(),
             ))

@@ -6,6 +6,7 @@
 // Each test binary uses its own part of this module.
 #![allow(dead_code)]
 
+use std::collections::BTreeMap;
 use std::io::{BufRead, BufReader};
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Output, Stdio};
@@ -151,5 +152,44 @@ pub fn stop(mut service: Child) {
             "the service did not stop"
         );
         std::thread::sleep(Duration::from_millis(50));
+    }
+}
+
+/// A report with image ids replaced by paths: ids are assigned in commit
+/// order, which differs between a merge and an index run of the same files.
+pub fn by_paths(report: &Value) -> Value {
+    let mut paths = BTreeMap::new();
+    collect_paths(report, &mut paths);
+    let mut named = report.clone();
+    rename_ids(&mut named, &paths);
+    named
+}
+
+fn collect_paths(value: &Value, paths: &mut BTreeMap<u64, String>) {
+    match value {
+        Value::Object(map) => {
+            if let (Some(id), Some(path)) = (map.get("id").and_then(Value::as_u64), map.get("path"))
+            {
+                paths.insert(id, path.as_str().unwrap().to_owned());
+            }
+            map.values().for_each(|v| collect_paths(v, paths));
+        }
+        Value::Array(items) => items.iter().for_each(|v| collect_paths(v, paths)),
+        _ => {}
+    }
+}
+
+fn rename_ids(value: &mut Value, paths: &BTreeMap<u64, String>) {
+    match value {
+        Value::Object(map) => {
+            for key in ["id", "copy_of"] {
+                if let Some(id) = map.get(key).and_then(Value::as_u64) {
+                    map.insert(key.into(), Value::String(paths[&id].clone()));
+                }
+            }
+            map.values_mut().for_each(|v| rename_ids(v, paths));
+        }
+        Value::Array(items) => items.iter_mut().for_each(|v| rename_ids(v, paths)),
+        _ => {}
     }
 }
