@@ -3,8 +3,8 @@
 # the folder given) indexed by `vitrine index` on both cores, then embedded by tools/ray-index as
 # PARTS parts on a local two-node Ray cluster (one CPU per node, one CPU per task) and merged.
 # On 2 cores expect parity; the gap is what the shard files, the merge and Ray add.
-# Ray runs in a network namespace of its own with only loopback (unshare, as root), so nothing
-# it starts listens or connects anywhere else. Needs the .venv of tools/test-all (ray).
+# Ray runs in network and process namespaces of its own (unshare, as root): only loopback, so
+# nothing it starts listens or connects anywhere else, and `ray stop` sees only this cluster. Needs the .venv of tools/test-all (ray).
 set -euo pipefail
 cd "$(dirname "$0")/.."
 root=$(pwd)
@@ -23,7 +23,7 @@ index_s=$(echo "$(date +%s.%N) - $start" | bc)
 images=$("$vitrine" --store "$work/indexed" status --format json | "$python" -c 'import json,sys; print(json.load(sys.stdin)["images"])')
 
 start=$(date +%s.%N)
-unshare --net bash -c '
+unshare --net --pid --fork --kill-child --mount-proc bash -c '
   set -euo pipefail
   ip link set lo up
   export RAY_USAGE_STATS_ENABLED=0
@@ -35,7 +35,8 @@ unshare --net bash -c '
   "$@"
 ' ray-bench "$ray" "$python" tools/ray-index --address 127.0.0.1:6379 --node-ip-address 127.0.0.1 \
   --parts "$parts" --cpus-per-task 1 --out "$work/shards" --store "$work/merged" \
-  --vitrine "$vitrine" --summary "$work/summary.json" "$folder" >/dev/null 2>&1
+  --vitrine "$vitrine" --summary "$work/summary.json" "$folder" >"$work/ray.log" 2>&1 \
+  || { cat "$work/ray.log" >&2; exit 1; }
 ray_s=$(echo "$(date +%s.%N) - $start" | bc)
 tasks_s=$("$python" -c 'import json,sys; print(sum(s["wall_seconds"] for s in json.load(open(sys.argv[1]))["shards"]))' "$work/summary.json")
 

@@ -4,6 +4,7 @@ use std::path::PathBuf;
 
 use clap::{Args, Parser, Subcommand};
 use vitrine_engine::labels::{LabelMethod, LabelOptions};
+use vitrine_engine::shards::ShardPart;
 
 use crate::output::OutputArgs;
 
@@ -97,7 +98,8 @@ pub enum Command {
     #[command(subcommand)]
     Decide(DecideCommand),
     /// Write the clean training list (dropped images left out, given splits
-    /// and labels applied) or the decision log.
+    /// and labels applied), the decision log, or every record and embedding
+    /// as Parquet.
     Export {
         #[arg(long, value_enum)]
         format: ExportFormat,
@@ -350,12 +352,17 @@ pub struct IndexArgs {
     pub batch_size: Option<usize>,
 }
 
+fn parse_part(text: &str) -> Result<ShardPart, String> {
+    text.parse()
+        .map_err(|err: vitrine_engine::EngineError| err.to_string())
+}
+
 #[derive(Args, Debug)]
 pub struct ShardArgs {
     /// Which part: I/N, counted from 0 (0/4 is the first of four). Files are
     /// assigned by a hash of their path relative to the root.
-    #[arg(long, value_name = "I/N")]
-    pub part: String,
+    #[arg(long, value_name = "I/N", value_parser = parse_part)]
+    pub part: ShardPart,
     /// The folder to write `part-I-of-N.parquet` into (atomically: a killed
     /// run leaves no file under that name).
     #[arg(long, value_name = "DIR")]

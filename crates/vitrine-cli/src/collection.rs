@@ -89,7 +89,7 @@ pub fn opening_failed(dir: &Path, err: StoreError) -> anyhow::Error {
     match served {
         Some(served) => anyhow!(
             "{err}: the service at {} (process {}) holds it; stop the service to run this \
-             command, or index through the service (`POST /api/v1/collections/{}/jobs/rescan`, \
+             command (to index while it runs, ask it: `POST /api/v1/collections/{}/jobs/rescan`, \
              with its token)",
             served.url,
             served.pid,

@@ -18,7 +18,7 @@ use vitrine_engine::ingest::{
 use vitrine_engine::labels::LabelOptions;
 use vitrine_engine::neighbours::NeighbourFilter;
 use vitrine_engine::questions::NeighbourQuery;
-use vitrine_engine::shards::{check_same_model, embed_shard, from_store, ShardMerge, ShardPart};
+use vitrine_engine::shards::{check_mergeable, embed_shard, from_store, ShardMerge};
 use vitrine_engine::splits::SplitRule;
 use vitrine_engine::walk::WalkOptions;
 use vitrine_imaging::PreprocessSpec;
@@ -229,9 +229,12 @@ fn print_times(report: &IndexReport) {
 }
 
 fn shard(ctx: &Session, args: &ShardArgs) -> Result<()> {
-    let part: ShardPart = args.part.parse()?;
+    let part = args.part;
     let encoder = ctx.encoder()?;
     let options = index_options(ctx, &args.index)?;
+    // Before the forward passes: a folder that cannot be made fails at once.
+    std::fs::create_dir_all(&args.out)
+        .with_context(|| format!("cannot create the folder {}", args.out.display()))?;
     let started = std::time::Instant::now();
     let (shard, report) = embed_shard(
         &encoder,
@@ -240,8 +243,6 @@ fn shard(ctx: &Session, args: &ShardArgs) -> Result<()> {
         part,
         &StderrProgress::new(),
     )?;
-    std::fs::create_dir_all(&args.out)
-        .with_context(|| format!("cannot create the folder {}", args.out.display()))?;
     let output = args
         .out
         .join(format!("part-{}-of-{}.parquet", part.index, part.count));
@@ -294,30 +295,21 @@ fn merge(ctx: &Session, named: &[PathBuf]) -> Result<()> {
     for file in &files {
         headers.push(read_header(file)?);
     }
-    let fingerprint = &headers[0].fingerprint;
-    for (file, header) in files.iter().zip(&headers) {
-        check_same_model(fingerprint, &header.fingerprint).with_context(|| {
-            format!(
-                "{} and {} cannot be merged",
-                files[0].display(),
-                file.display()
-            )
-        })?;
-    }
-    let mut store = Store::create_or_open(&ctx.global.store, fingerprint)
+    check_mergeable(
+        headers
+            .iter()
+            .map(|h| (&h.fingerprint, h.part, h.roots.as_slice())),
+    )
+    .context("these files cannot be merged together")?;
+    let mut store = Store::create_or_open(&ctx.global.store, &headers[0].fingerprint)
         .map_err(|err| collection::opening_failed(&ctx.global.store, err))?;
     let started = std::time::Instant::now();
-    let mut merging = ShardMerge::new(&mut store, ctx.settings.index.commit_every);
-    for (file, header) in files.iter().zip(&headers) {
-        merging
-            .check_model(&header.fingerprint)
-            .with_context(|| format!("{} cannot be merged into this collection", file.display()))?;
-    }
+    let mut merging = ShardMerge::new(&mut store, ctx.settings.index.commit_every)?;
     for file in &files {
         let shard = read_shard(file)?;
         merging
             .add(&shard, &StderrProgress::new())
-            .with_context(|| format!("while merging {}", file.display()))?;
+            .with_context(|| format!("{} cannot be merged into this collection", file.display()))?;
     }
     let report = merging.finish()?;
     println!(
@@ -325,6 +317,12 @@ fn merge(ctx: &Session, named: &[PathBuf]) -> Result<()> {
         started.elapsed().as_secs_f64(),
         store.len()
     );
+    if !report.complete_partition {
+        println!(
+            "nothing was removed: only every part of one partition (all I of one N) says which \
+             files are gone"
+        );
+    }
     if report.failed > 0 {
         println!("see `vitrine status --errors` for the files that failed");
     }
@@ -414,28 +412,33 @@ fn decide(ctx: &Session, command: DecideCommand) -> Result<()> {
     Ok(())
 }
 
+/// Every record and embedding of the store in the shard layout; read from the
+/// store itself (a running service that holds it must be stopped first).
+fn export_parquet(ctx: &Session, output: Option<PathBuf>) -> Result<()> {
+    let path = output.context("--format parquet writes a file: give it with --output FILE")?;
+    let store = ctx.open_store()?;
+    let shard = from_store(&store)?;
+    write_shard(&path, &shard)?;
+    println!(
+        "{} images and {} failed files written to {}",
+        shard.images.len(),
+        shard.failures.len(),
+        path.display()
+    );
+    Ok(())
+}
+
 fn export(ctx: &Session, format: ExportFormat, output: Option<PathBuf>) -> Result<()> {
-    if let ExportFormat::Parquet = format {
-        let path = output.context("--format parquet writes a file: give it with --output FILE")?;
-        let store = ctx.open_store()?;
-        let shard = from_store(&store)?;
-        write_shard(&path, &shard)?;
-        println!(
-            "{} images and {} failed files written to {}",
-            shard.images.len(),
-            shard.failures.len(),
-            path.display()
-        );
-        return Ok(());
-    }
-    let collection = collection::open(ctx)?;
+    // Opened by the formats that read through a collection (maybe a service's).
+    let collection = || collection::open(ctx);
     let with_format = |format| OutputArgs {
         format,
         output: output.clone(),
     };
     match format {
+        ExportFormat::Parquet => export_parquet(ctx, output.clone()),
         ExportFormat::Manifest => {
-            let csv = collection.manifest_csv()?;
+            let csv = collection()?.manifest_csv()?;
             match &output {
                 Some(path) => std::fs::write(path, csv)
                     .with_context(|| format!("cannot write {}", path.display()))?,
@@ -444,14 +447,13 @@ fn export(ctx: &Session, format: ExportFormat, output: Option<PathBuf>) -> Resul
             Ok(())
         }
         ExportFormat::DecisionsCsv => emit(
-            &DecisionTable(collection.decisions()?),
+            &DecisionTable(collection()?.decisions()?),
             &with_format(Format::Csv),
         ),
         ExportFormat::DecisionsJsonl => emit(
-            &DecisionTable(collection.decisions()?),
+            &DecisionTable(collection()?.decisions()?),
             &with_format(Format::Jsonl),
         ),
-        ExportFormat::Parquet => unreachable!("written above, without a collection"),
     }
 }
 

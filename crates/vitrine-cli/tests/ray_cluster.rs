@@ -9,8 +9,10 @@
 //!
 //! Everything Ray starts runs in a network namespace of its own that holds
 //! only a loopback interface (`unshare --net`, as root), so every node's
-//! address is 127.0.0.1 and nothing can listen or connect elsewhere. The
-//! cluster is stopped when the script ends, and every step has a time limit.
+//! address is 127.0.0.1 and nothing can listen or connect elsewhere, and in a
+//! process namespace of its own (`--pid --kill-child`), so that `ray stop`
+//! sees only this cluster and nothing outlives the test, however it ends.
+//! Every step has a time limit.
 
 mod common;
 
@@ -25,8 +27,9 @@ const BIN: &str = env!("CARGO_BIN_EXE_vitrine");
 const PARTS: u32 = 4;
 /// The whole Ray run: two node starts, four parts of about 55 images on one
 /// core each, one retried, and the merge take about 90 s on this project's
-/// 2-core machines.
-const RAY_RUN_LIMIT: Duration = Duration::from_secs(900);
+/// 2-core machines. Above the script's own limits (60 + 60 + 900 s), so that
+/// they, not this one, end a run that hangs.
+const RAY_RUN_LIMIT: Duration = Duration::from_secs(1200);
 
 fn repo() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).join("../..")
@@ -41,31 +44,41 @@ fn requirements() -> Option<(PathBuf, PathBuf)> {
         .join(vitrine_model::fetch::DEFAULT_WHEEL.id)
         .join("model.json")
         .exists();
+    // Network and process namespaces need root (CI runs as root).
+    let root = Command::new("id")
+        .arg("-u")
+        .output()
+        .is_ok_and(|out| out.stdout.trim_ascii() == b"0");
     match python {
-        Some(python) if model_ready => Some((python, model_root)),
+        Some(python) if model_ready && root => Some((python, model_root)),
         _ => {
             assert!(
                 std::env::var_os("CI").is_none(),
-                "CI must provide VITRINE_PYTHON (with ray) and the default model"
+                "CI must run as root and provide VITRINE_PYTHON (with ray) and the default model"
             );
-            eprintln!("skipping: VITRINE_PYTHON or the default model is missing");
+            eprintln!("skipping: not root, or VITRINE_PYTHON or the default model is missing");
             None
         }
     }
 }
 
-/// A stand-in for the binary that kills the first attempt at part 1 part-way,
-/// and the Ray worker that runs it, and notes whether vitrine was still
-/// running when it was killed.
+/// A stand-in for the binary that kills the first attempt at part 1, and the
+/// Ray worker that runs it, a second after vitrine has begun embedding (its
+/// first progress line), and notes whether vitrine was still running then.
 fn write_killing_wrapper(dir: &Path) -> (PathBuf, PathBuf) {
     let wrapper = dir.join("vitrine-killed-once");
     let note = dir.join("killed.txt");
     let script = format!(
         r#"#!/bin/bash
 if [[ " $* " == *" --part 1/{PARTS} "* ]] && mkdir "{lock}" 2>/dev/null; then
-  "{bin}" "$@" &
+  "{bin}" "$@" 2> "{progress}" &
   child=$!
-  sleep 4
+  for _ in $(seq 600); do
+    grep -q "images to go" "{progress}" 2>/dev/null && break
+    kill -0 "$child" 2>/dev/null || break
+    sleep 0.2
+  done
+  sleep 1
   if kill -0 "$child" 2>/dev/null; then echo running > "{note}"; else echo finished > "{note}"; fi
   kill -9 "$child" "$PPID"
   exit 137
@@ -73,6 +86,7 @@ fi
 exec "{bin}" "$@"
 "#,
         lock = dir.join("first-attempt").display(),
+        progress = dir.join("first-attempt.stderr").display(),
         bin = BIN,
         note = note.display(),
     );
@@ -92,9 +106,9 @@ ip link set lo up
 export RAY_USAGE_STATS_ENABLED=0
 trap '"$ray" stop --force >/dev/null 2>&1 || true' EXIT
 common=(--node-ip-address=127.0.0.1 --num-cpus=1 --disable-usage-stats --object-store-memory=100000000)
-timeout 120 "$ray" start --head --port=6379 --include-dashboard=false "${common[@]}" >&2
-timeout 120 "$ray" start --address=127.0.0.1:6379 "${common[@]}" >&2
-timeout 800 "$python" "$@"
+timeout 60 "$ray" start --head --port=6379 --include-dashboard=false "${common[@]}" >&2
+timeout 60 "$ray" start --address=127.0.0.1:6379 "${common[@]}" >&2
+timeout 900 "$python" "$@"
 "#;
 
 fn run_bounded(mut command: Command, limit: Duration) -> std::process::Output {
@@ -143,7 +157,8 @@ fn a_two_node_ray_cluster_embeds_parts_that_merge_into_the_single_machine_store(
 
     let mut cluster = Command::new("unshare");
     cluster
-        .args(["--net", "bash", "-c", CLUSTER_SCRIPT, "ray-cluster"])
+        .args(["--net", "--pid", "--fork", "--kill-child", "--mount-proc"])
+        .args(["bash", "-c", CLUSTER_SCRIPT, "ray-cluster"])
         .arg(&ray)
         .arg(&python)
         .arg(repo().join("tools/ray-index"))

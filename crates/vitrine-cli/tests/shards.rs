@@ -46,18 +46,19 @@ fn succeed(out: std::process::Output) -> String {
     String::from_utf8(out.stdout).unwrap()
 }
 
-/// Writes every part into `folder`, returns the files in part order.
+/// Writes every part of the fixture's images into `folder`, returns the
+/// files in part order.
 fn write_parts(fx: &Fixture, folder: &Path) -> Vec<PathBuf> {
+    write_parts_of(fx, folder, &[fx.images()])
+}
+
+fn write_parts_of(fx: &Fixture, folder: &Path, roots: &[PathBuf]) -> Vec<PathBuf> {
     (0..PARTS)
         .map(|index| {
-            succeed(fx.run(&[
-                "shard",
-                "--part",
-                &format!("{index}/{PARTS}"),
-                "--out",
-                folder.to_str().unwrap(),
-                fx.images().to_str().unwrap(),
-            ]));
+            let mut command =
+                fx.command(&["shard", "--part", &format!("{index}/{PARTS}"), "--out"]);
+            command.arg(folder).args(roots);
+            succeed(command.output().unwrap());
             folder.join(format!("part-{index}-of-{PARTS}.parquet"))
         })
         .collect()
@@ -259,7 +260,9 @@ fn a_shard_of_another_model_is_refused_and_the_store_is_untouched() {
     assert!(!fresh.exists());
 
     // A part that is not I/N with I < N is refused, naming the form.
-    let out = fx.run(&["shard", "--part", "3/3", "--out", "parts", "."]);
+    let mut command = fx.command(&["shard", "--part", "3/3", "--out"]);
+    command.arg(fx.dir.path().join("parts")).arg(fx.images());
+    let out = command.output().unwrap();
     assert!(!out.status.success());
     assert!(String::from_utf8_lossy(&out.stderr).contains("I/N"));
 }
@@ -285,6 +288,52 @@ fn a_complete_partition_removes_vanished_files_and_a_partial_one_does_not() {
     let complete = merge(&fx, &fx.store(), &files);
     assert!(complete.contains("1 removed"), "{complete}");
     assert_eq!(fx.status()["images"], 37);
+}
+
+#[test]
+fn a_folder_holding_two_runs_is_refused_and_an_emptied_root_is_cleared() {
+    let fx = Fixture::new();
+    fill_images(&fx);
+    let second_root = fx.dir.path().join("more");
+    for seed in 300..303u32 {
+        write_image(&second_root.join(format!("{seed}.png")), seed);
+    }
+    std::fs::write(second_root.join("cut.png"), b"\x89PNG\r\n").unwrap();
+    let roots = [fx.images(), second_root.clone()];
+    merge(
+        &fx,
+        &fx.store(),
+        &write_parts_of(&fx, &fx.dir.path().join("first"), &roots),
+    );
+    let status = fx.status();
+    assert_eq!(status["images"], 41);
+    assert_eq!(status["errors"], 2, "{status}");
+
+    // This test's own second folder is emptied; the new run's files share a
+    // folder with a part of another partition.
+    for entry in std::fs::read_dir(&second_root).unwrap() {
+        std::fs::remove_file(entry.unwrap().path()).unwrap();
+    }
+    let second = fx.dir.path().join("second");
+    write_parts_of(&fx, &second, &roots);
+    let mut stray = fx.command(&["shard", "--part", "0/2", "--out"]);
+    stray.arg(&second).args(&roots);
+    succeed(stray.output().unwrap());
+    let mut mixed = fx.command(&["merge"]);
+    mixed.arg(&second);
+    let out = mixed.output().unwrap();
+    assert!(!out.status.success());
+    let message = String::from_utf8_lossy(&out.stderr);
+    assert!(message.contains("different runs"), "{message}");
+    assert_eq!(fx.status()["images"], 41);
+
+    std::fs::remove_file(second.join("part-0-of-2.parquet")).unwrap();
+    let complete = merge(&fx, &fx.store(), &[second]);
+    assert!(complete.contains("3 removed"), "{complete}");
+    let status = fx.status();
+    assert_eq!(status["images"], 38);
+    // The emptied folder's failed file is gone from the errors too.
+    assert_eq!(status["errors"], 1, "{status}");
 }
 
 #[test]

@@ -38,28 +38,27 @@ pub struct Catalog {
 
 impl Catalog {
     pub fn load(store: &Store) -> Result<Self, EngineError> {
-        let (stored_ids, stored_embeddings) = store.all_embeddings()?;
+        let (stored_ids, mut embeddings) = store.all_embeddings()?;
         let dim = store.fingerprint().dim;
         let roots: HashMap<u32, PathBuf> = store.roots().into_iter().collect();
         let mut stored_records = Vec::with_capacity(stored_ids.len());
         for &id in &stored_ids {
             let record = store.record(id)?.ok_or(EngineError::UnknownImage(id))?;
-            stored_records.push(record);
+            stored_records.push(Some(record));
         }
+        let place = |record: &Option<ImageRecord>| {
+            let record = record.as_ref().expect("every record is read above");
+            (roots.get(&record.root), record.rel_path.clone())
+        };
         let mut order: Vec<usize> = (0..stored_ids.len()).collect();
-        order.sort_by(|&a, &b| {
-            let place = |i: usize| {
-                let record: &ImageRecord = &stored_records[i];
-                (roots.get(&record.root), &record.rel_path)
-            };
-            place(a).cmp(&place(b))
-        });
+        order.sort_by_cached_key(|&i| place(&stored_records[i]));
         let ids: Vec<ImageId> = order.iter().map(|&i| stored_ids[i]).collect();
-        let mut embeddings = Vec::with_capacity(stored_embeddings.len());
-        for &i in &order {
-            embeddings.extend_from_slice(&stored_embeddings[i * dim..(i + 1) * dim]);
-        }
-        let records = order.iter().map(|&i| stored_records[i].clone()).collect();
+        let records = order
+            .iter()
+            .map(|&i| stored_records[i].take().expect("each row is taken once"))
+            .collect();
+        // In place: a copy would double the largest allocation of a query.
+        gather_rows(&mut embeddings, dim, &order);
         let row_of = ids.iter().enumerate().map(|(row, &id)| (id, row)).collect();
         Ok(Self {
             ids,
@@ -189,9 +188,34 @@ impl Catalog {
     }
 }
 
-/// Neighbours asked for beyond `k` in [`Catalog::nearest_rows`]: within the
-/// graph's search width (64), so they cost no extra search steps.
+/// Neighbours asked for beyond `k` in [`Catalog::nearest_rows`]: below the
+/// graph's default search width, so they cost no extra search steps.
 const TIED_EXTRA: usize = 8;
+
+/// Reorders the rows of a row-major matrix in place so that row `r` becomes
+/// the old row `order[r]` (`order` a permutation), with one row of scratch:
+/// each cycle of the permutation is followed once.
+fn gather_rows(data: &mut [f32], width: usize, order: &[usize]) {
+    let mut placed = vec![false; order.len()];
+    let mut scratch = vec![0.0f32; width];
+    for start in 0..order.len() {
+        if placed[start] || order[start] == start {
+            continue;
+        }
+        scratch.copy_from_slice(&data[start * width..(start + 1) * width]);
+        let mut row = start;
+        loop {
+            placed[row] = true;
+            let from = order[row];
+            if from == start {
+                data[row * width..(row + 1) * width].copy_from_slice(&scratch);
+                break;
+            }
+            data.copy_within(from * width..(from + 1) * width, row * width);
+            row = from;
+        }
+    }
+}
 
 fn distinct<'a>(values: impl Iterator<Item = &'a str>) -> Vec<String> {
     let set: BTreeSet<&str> = values.collect();
@@ -200,4 +224,23 @@ fn distinct<'a>(values: impl Iterator<Item = &'a str>) -> Vec<String> {
 
 pub fn dot(a: &[f32], b: &[f32]) -> f32 {
     a.iter().zip(b).map(|(x, y)| x * y).sum()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn rows_are_gathered_in_place_as_a_copy_would_gather_them() {
+        let width = 3;
+        let order = [4, 2, 0, 1, 3, 5, 7, 6];
+        let data: Vec<f32> = (0..order.len() * width).map(|v| v as f32).collect();
+        let copied: Vec<f32> = order
+            .iter()
+            .flat_map(|&i| data[i * width..(i + 1) * width].to_vec())
+            .collect();
+        let mut in_place = data.clone();
+        gather_rows(&mut in_place, width, &order);
+        assert_eq!(in_place, copied);
+    }
 }

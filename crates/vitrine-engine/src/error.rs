@@ -58,8 +58,8 @@ pub enum EngineError {
     #[error("the collection's embeddings were made by {stored}, but the loaded model is {loaded}")]
     ModelNotCollectionModel { stored: String, loaded: String },
     #[error(
-        "these embeddings were made by {found}, but the collection's are by {expected} \
-         (they differ in {differing}); embeddings of two models never mix"
+        "embeddings made by {found} cannot join embeddings made by {expected} (the models \
+         differ in {differing}); embeddings of two models never mix"
     )]
     ShardOfAnotherModel {
         expected: String,

@@ -471,12 +471,12 @@ fn labelled_neighbours(
     let own_id = catalog.ids[row];
     let accepts =
         |id: ImageId| id != own_id && catalog.record(id).is_some_and(|r| r.label.is_some());
-    let hits = store.search(catalog.embedding_at(row), k, Some(&accepts))?;
+    let hits = catalog.nearest_rows(store, catalog.embedding_at(row), k, Some(&accepts))?;
     Ok(hits
         .into_iter()
-        .filter_map(|(id, similarity)| {
+        .filter_map(|(other, similarity)| {
             Some(VotingNeighbour {
-                label: catalog.record(id)?.label.clone()?,
+                label: catalog.records[other].label.clone()?,
                 similarity,
             })
         })

@@ -111,18 +111,16 @@ pub fn nearest_to_vector(
     let accepts = |id: ImageId| {
         Some(id) != exclude && catalog.record(id).is_some_and(|r| filter.accepts_record(r))
     };
-    let hits = store.search(query, k, Some(&accepts))?;
+    let hits = catalog.nearest_rows(store, query, k, Some(&accepts))?;
     // Checked only when nothing was found, so answered queries pay nothing.
     if hits.is_empty() {
         filter.check_matches_some(catalog)?;
     }
     Ok(hits
         .into_iter()
-        .filter_map(|(id, similarity)| {
-            catalog.row(id).map(|row| Neighbour {
-                image: catalog.image_ref(row),
-                similarity,
-            })
+        .map(|(row, similarity)| Neighbour {
+            image: catalog.image_ref(row),
+            similarity,
         })
         .collect())
 }

@@ -14,7 +14,6 @@ use std::path::PathBuf;
 use std::str::FromStr;
 use std::time::Instant;
 
-use serde::{Deserialize, Serialize};
 use vitrine_model::encoder::Encoder;
 use vitrine_store::{ChangeSet, FileError, ImageId, ImageRecord, ModelFingerprint, Store, Upsert};
 
@@ -26,7 +25,7 @@ use crate::progress::Progress;
 use crate::walk::walk_root;
 
 /// Part `index` of `count` (written `I/N`, counted from 0).
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash, Serialize, Deserialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Hash)]
 pub struct ShardPart {
     pub index: u32,
     pub count: u32,
@@ -231,7 +230,7 @@ pub fn from_store(store: &Store) -> Result<Shard, EngineError> {
 }
 
 /// Counts of one merge.
-#[derive(Clone, Debug, Default, PartialEq, Serialize)]
+#[derive(Clone, Debug, Default, PartialEq)]
 pub struct MergeReport {
     pub shards: usize,
     pub new: usize,
@@ -242,6 +241,9 @@ pub struct MergeReport {
     /// Images of the merged roots that no shard holds any more; only removed
     /// when the shards are every part of one partition (all I of one N).
     pub removed: usize,
+    /// Whether the shards were every part of one partition, so that what
+    /// they no longer hold could be removed.
+    pub complete_partition: bool,
     pub store_seconds: f64,
 }
 
@@ -260,6 +262,54 @@ impl fmt::Display for MergeReport {
     }
 }
 
+/// A partition: its number of parts and the roots it divides.
+type Partition<'s> = (u32, &'s [PathBuf]);
+
+/// Refuses shards that cannot be merged together, from their headers alone:
+/// two models, the same part twice, or parts of partitions of different
+/// sizes or roots (a folder holding the files of an older run beside a new
+/// one), which would let stale rows overwrite new ones.
+pub fn check_mergeable<'s>(
+    headers: impl IntoIterator<Item = (&'s ModelFingerprint, Option<ShardPart>, &'s [PathBuf])>,
+) -> Result<(), EngineError> {
+    let mut first: Option<(&ModelFingerprint, Option<Partition>)> = None;
+    let mut parts_seen = HashSet::new();
+    for (fingerprint, part, roots) in headers {
+        let partition = part.map(|p| (p.count, roots));
+        match first {
+            None => first = Some((fingerprint, partition)),
+            Some((model, first_partition)) => {
+                check_same_model(model, fingerprint)?;
+                if let (Some(a), Some(b)) = (first_partition, partition) {
+                    if a != b {
+                        return Err(EngineError::InvalidArgument(format!(
+                            "these files come from different runs: parts of {} over {} and \
+                             parts of {} over {}; merge one run's files at a time",
+                            a.0,
+                            describe_roots(a.1),
+                            b.0,
+                            describe_roots(b.1)
+                        )));
+                    }
+                }
+            }
+        }
+        if let Some(part) = part {
+            if !parts_seen.insert(part) {
+                return Err(EngineError::InvalidArgument(format!(
+                    "part {part} is given twice; give each part once"
+                )));
+            }
+        }
+    }
+    Ok(())
+}
+
+fn describe_roots(roots: &[PathBuf]) -> String {
+    let names: Vec<String> = roots.iter().map(|r| r.display().to_string()).collect();
+    names.join(", ")
+}
+
 /// Merges shards into a store, one at a time, in small atomic commits: a
 /// kill leaves a store that opens, and merging the same shards again
 /// finishes the work (an image whose record is already stored is left as
@@ -268,37 +318,52 @@ pub struct ShardMerge<'a> {
     store: &'a mut Store,
     commit_every: usize,
     report: MergeReport,
+    /// What the store holds, by (root id, path), read once and kept up to
+    /// date with every commit.
+    stored: HashMap<(u32, String), (ImageId, ImageRecord)>,
+    recorded_errors: HashMap<(u32, String), String>,
     /// (store root id, path) of every file a merged shard holds.
     seen: HashSet<(u32, String)>,
+    merged_roots: HashSet<u32>,
     parts: Vec<Option<ShardPart>>,
     root_lists: HashSet<Vec<PathBuf>>,
 }
 
 impl<'a> ShardMerge<'a> {
-    pub fn new(store: &'a mut Store, commit_every: usize) -> Self {
-        ShardMerge {
+    pub fn new(store: &'a mut Store, commit_every: usize) -> Result<Self, EngineError> {
+        let mut stored = HashMap::new();
+        for entry in store.records() {
+            let (id, record) = entry?;
+            stored.insert((record.root, record.rel_path.clone()), (id, record));
+        }
+        let recorded_errors = store
+            .errors()?
+            .into_iter()
+            .map(|error| ((error.root, error.rel_path), error.reason))
+            .collect();
+        Ok(ShardMerge {
             store,
             commit_every: commit_every.max(1),
             report: MergeReport::default(),
+            stored,
+            recorded_errors,
             seen: HashSet::new(),
+            merged_roots: HashSet::new(),
             parts: Vec::new(),
             root_lists: HashSet::new(),
-        }
+        })
     }
 
-    /// Refuses a shard made by another model than the store's, before
-    /// anything of it is written. Callers check every shard first.
-    pub fn check_model(&self, fingerprint: &ModelFingerprint) -> Result<(), EngineError> {
-        check_same_model(self.store.fingerprint(), fingerprint)
-    }
-
+    /// Adds one shard; a shard of another model than the store's is refused
+    /// before anything of it is written.
     pub fn add(&mut self, shard: &Shard, progress: &dyn Progress) -> Result<(), EngineError> {
-        self.check_model(&shard.fingerprint)?;
+        check_same_model(self.store.fingerprint(), &shard.fingerprint)?;
         let started = Instant::now();
         let mut root_ids = Vec::with_capacity(shard.roots.len());
         for root in &shard.roots {
             root_ids.push(self.store.add_root(root)?);
         }
+        self.merged_roots.extend(root_ids.iter().copied());
         let store_root = |index: u32| {
             root_ids.get(index as usize).copied().ok_or_else(|| {
                 EngineError::InvalidArgument(format!(
@@ -307,19 +372,6 @@ impl<'a> ShardMerge<'a> {
                 ))
             })
         };
-        let mut existing: HashMap<(u32, String), (ImageId, ImageRecord)> = HashMap::new();
-        for entry in self.store.records() {
-            let (id, record) = entry?;
-            if root_ids.contains(&record.root) {
-                existing.insert((record.root, record.rel_path.clone()), (id, record));
-            }
-        }
-        let recorded_errors: HashMap<(u32, String), String> = self
-            .store
-            .errors()?
-            .into_iter()
-            .map(|error| ((error.root, error.rel_path), error.reason))
-            .collect();
 
         progress.begin("images", (shard.images.len() + shard.failures.len()) as u64);
         let mut changes = ChangeSet::default();
@@ -327,7 +379,7 @@ impl<'a> ShardMerge<'a> {
             let mut record = image.record.clone();
             record.root = store_root(record.root)?;
             let key = (record.root, record.rel_path.clone());
-            let replaces = match existing.get(&key) {
+            let replaces = match self.stored.get(&key) {
                 Some((_, stored)) if *stored == record => {
                     self.report.unchanged += 1;
                     None
@@ -341,7 +393,7 @@ impl<'a> ShardMerge<'a> {
                     Some(None)
                 }
             };
-            if recorded_errors.contains_key(&key) {
+            if self.recorded_errors.contains_key(&key) {
                 changes.cleared_errors.push(key.clone());
             }
             if let Some(replaces) = replaces {
@@ -360,7 +412,7 @@ impl<'a> ShardMerge<'a> {
         for failure in &shard.failures {
             let key = (store_root(failure.root)?, failure.rel_path.clone());
             self.report.failed += 1;
-            if recorded_errors.get(&key) != Some(&failure.reason) {
+            if self.recorded_errors.get(&key) != Some(&failure.reason) {
                 changes.errors.push(FileError {
                     root: key.0,
                     rel_path: key.1.clone(),
@@ -380,9 +432,26 @@ impl<'a> ShardMerge<'a> {
         Ok(())
     }
 
+    /// Commits `changes` and keeps the view of the store in step with it.
     fn commit(&mut self, changes: ChangeSet) -> Result<(), EngineError> {
-        if !changes.is_empty() {
-            self.store.commit(changes)?;
+        if changes.is_empty() {
+            return Ok(());
+        }
+        let ids = self.store.commit(changes.clone())?;
+        for (upsert, id) in changes.upserts.into_iter().zip(ids) {
+            let key = (upsert.record.root, upsert.record.rel_path.clone());
+            self.stored.insert(key, (id, upsert.record));
+        }
+        for key in changes.cleared_errors {
+            self.recorded_errors.remove(&key);
+        }
+        for error in changes.errors {
+            self.recorded_errors
+                .insert((error.root, error.rel_path), error.reason);
+        }
+        let removed: HashSet<ImageId> = changes.removals.into_iter().collect();
+        if !removed.is_empty() {
+            self.stored.retain(|_, (id, _)| !removed.contains(id));
         }
         Ok(())
     }
@@ -399,24 +468,32 @@ impl<'a> ShardMerge<'a> {
         (indices.len() == count as usize && self.root_lists.len() == 1).then_some(count)
     }
 
-    /// Removes what a complete partition no longer holds, then saves the
+    /// Removes what a complete partition no longer holds (images and the
+    /// errors of files that are gone, as an index run does), then saves the
     /// graph.
     pub fn finish(mut self) -> Result<MergeReport, EngineError> {
         let started = Instant::now();
-        if self.complete_partition().is_some() {
-            let merged_roots: HashSet<u32> = self.seen.iter().map(|(root, _)| *root).collect();
-            let mut removals = Vec::new();
-            for entry in self.store.records() {
-                let (id, record) = entry?;
-                if merged_roots.contains(&record.root)
-                    && !self.seen.contains(&(record.root, record.rel_path.clone()))
-                {
-                    removals.push(id);
-                }
-            }
+        self.report.complete_partition = self.complete_partition().is_some();
+        if self.report.complete_partition {
+            let vanished = |key: &(u32, String)| {
+                self.merged_roots.contains(&key.0) && !self.seen.contains(key)
+            };
+            let removals: Vec<ImageId> = self
+                .stored
+                .iter()
+                .filter(|(key, _)| vanished(key))
+                .map(|(_, (id, _))| *id)
+                .collect();
+            let cleared_errors: Vec<(u32, String)> = self
+                .recorded_errors
+                .keys()
+                .filter(|key| vanished(key))
+                .cloned()
+                .collect();
             self.report.removed = removals.len();
             self.commit(ChangeSet {
                 removals,
+                cleared_errors,
                 ..ChangeSet::default()
             })?;
         }

@@ -183,7 +183,7 @@ fn merge(file: &Path, dir: &Path) -> anyhow::Result<()> {
     let started = Instant::now();
     let shard = vitrine_parquet::read_shard(file)?;
     let mut store = Store::create_or_open(dir, &shard.fingerprint)?;
-    let mut merging = ShardMerge::new(&mut store, INDEX_COMMIT);
+    let mut merging = ShardMerge::new(&mut store, INDEX_COMMIT)?;
     merging.add(&shard, &Silent)?;
     merging.finish()?;
     report_run(started)

@@ -51,7 +51,8 @@ const KEY_MODEL: &str = "vitrine.model";
 const KEY_ROOTS: &str = "vitrine.roots";
 const KEY_SHARD: &str = "vitrine.shard";
 
-/// Rows per record batch (and so per row group at most).
+/// Rows per record batch and per row group, so that a reader holds about
+/// this many rows at a time (8,192 × 384 floats is 12 MB).
 const ROWS_PER_BATCH: usize = 8192;
 
 #[derive(Debug, thiserror::Error)]
@@ -71,11 +72,23 @@ pub enum ParquetFileError {
         path: PathBuf,
         source: parquet::errors::ParquetError,
     },
+    #[error("cannot write the Parquet file {path}")]
+    ParquetWrite {
+        path: PathBuf,
+        source: parquet::errors::ParquetError,
+    },
     #[error("cannot build the rows of {path}")]
-    Arrow {
+    BuildRows {
         path: PathBuf,
         source: arrow_schema::ArrowError,
     },
+    #[error("cannot read the rows of {path}")]
+    ReadRows {
+        path: PathBuf,
+        source: arrow_schema::ArrowError,
+    },
+    #[error("{path} names no file to write")]
+    NoFileName { path: PathBuf },
     #[error("{path} is not a vitrine shard or export: {message}")]
     NotOurLayout { path: PathBuf, message: String },
     #[error("{path} has layout version {found}; this vitrine reads up to {FORMAT_VERSION}; use a newer vitrine")]
@@ -158,6 +171,7 @@ pub fn write_shard(path: &Path, shard: &Shard) -> Result<(), ParquetFileError> {
         .set_compression(Compression::SNAPPY)
         .set_key_value_metadata(Some(metadata))
         .set_created_by(format!("vitrine {}", env!("CARGO_PKG_VERSION")))
+        .set_max_row_group_row_count(Some(ROWS_PER_BATCH))
         .build();
 
     let folder = match path.parent() {
@@ -166,12 +180,24 @@ pub fn write_shard(path: &Path, shard: &Shard) -> Result<(), ParquetFileError> {
     };
     let name = path
         .file_name()
-        .map(|name| name.to_string_lossy().into_owned())
-        .unwrap_or_else(|| "shard.parquet".into());
-    let temporary = folder.join(format!(".{name}.partial-{}", std::process::id()));
-    let file = File::create(&temporary).map_err(write_error)?;
+        .ok_or_else(|| ParquetFileError::NoFileName {
+            path: path.to_path_buf(),
+        })?
+        .to_string_lossy()
+        .into_owned();
+    // A random name, so that two attempts at one part (a retry while the
+    // first is still running elsewhere) never write the same temporary
+    // file; it is deleted if anything below fails.
+    let temporary = tempfile::Builder::new()
+        .prefix(&format!(".{name}."))
+        .suffix(".partial")
+        // Readable by the other machines' users, like any file vitrine writes.
+        .permissions(std::os::unix::fs::PermissionsExt::from_mode(0o644))
+        .tempfile_in(&folder)
+        .map_err(write_error)?;
+    let file = temporary.as_file().try_clone().map_err(write_error)?;
     let schema = Arc::new(schema(shard.fingerprint.dim));
-    let parquet_error = |source| ParquetFileError::Parquet {
+    let parquet_error = |source| ParquetFileError::ParquetWrite {
         path: path.to_path_buf(),
         source,
     };
@@ -185,7 +211,7 @@ pub fn write_shard(path: &Path, shard: &Shard) -> Result<(), ParquetFileError> {
         .collect();
     for chunk in rows.chunks(ROWS_PER_BATCH) {
         let batch = record_batch(&schema, chunk, &roots, &model, shard.fingerprint.dim).map_err(
-            |source| ParquetFileError::Arrow {
+            |source| ParquetFileError::BuildRows {
                 path: path.to_path_buf(),
                 source,
             },
@@ -195,12 +221,13 @@ pub fn write_shard(path: &Path, shard: &Shard) -> Result<(), ParquetFileError> {
     let file = writer.into_inner().map_err(parquet_error)?;
     file.sync_all().map_err(write_error)?;
     drop(file);
-    std::fs::rename(&temporary, path).map_err(write_error)?;
-    if let Ok(folder) = File::open(&folder) {
-        // Makes the rename itself durable; a folder that cannot be opened
-        // for syncing (some network file systems) still has the file.
-        folder.sync_all().map_err(write_error)?;
-    }
+    temporary
+        .persist(path)
+        .map_err(|failed| write_error(failed.error))?;
+    // Makes the rename itself durable across a power loss. Some network file
+    // systems can neither open nor sync a folder; the file is complete under
+    // its final name either way, so that is not an error.
+    let _ = File::open(&folder).and_then(|folder| folder.sync_all());
     Ok(())
 }
 
@@ -227,12 +254,20 @@ fn record_batch(
         FixedSizeListBuilder::with_capacity(Float32Builder::with_capacity(n * dim), dim as i32, n)
             .with_field(Arc::new(Field::new("item", DataType::Float32, false)));
     let mut error = StringBuilder::new();
+    let root_of = |index: u32| {
+        roots.get(index as usize).copied().ok_or_else(|| {
+            arrow_schema::ArrowError::InvalidArgumentError(format!(
+                "a row names root {index}, but the shard lists {} roots",
+                roots.len()
+            ))
+        })
+    };
     for row in rows {
         model_column.append_value(model);
         match row {
             Row::Image(image) => {
                 let record = &image.record;
-                root.append_value(roots[record.root as usize]);
+                root.append_value(root_of(record.root)?);
                 path.append_value(&record.rel_path);
                 split.append_option(record.split.as_deref());
                 label.append_option(record.label.as_deref());
@@ -254,7 +289,7 @@ fn record_batch(
                 error.append_null();
             }
             Row::Failure(failure) => {
-                root.append_value(roots[failure.root as usize]);
+                root.append_value(root_of(failure.root)?);
                 path.append_value(&failure.rel_path);
                 split.append_null();
                 label.append_null();
@@ -384,12 +419,14 @@ pub fn read_shard(path: &Path) -> Result<Shard, ParquetFileError> {
         failures: Vec::new(),
     };
     let model = serde_json::to_string(&header.fingerprint).expect("a fingerprint is plain data");
+    let mut first_row = 0;
     for batch in reader {
-        let batch = batch.map_err(|source| ParquetFileError::Arrow {
+        let batch = batch.map_err(|source| ParquetFileError::ReadRows {
             path: path.to_path_buf(),
             source,
         })?;
-        read_rows(path, &batch, &header, &model, &mut shard)?;
+        read_rows(path, &batch, first_row, &header, &model, &mut shard)?;
+        first_row += batch.num_rows();
     }
     Ok(shard)
 }
@@ -408,9 +445,11 @@ fn column<'b, T: 'static>(
         })
 }
 
+/// Appends the rows of `batch` (rows `first_row..` of the file) to `shard`.
 fn read_rows(
     path: &Path,
     batch: &RecordBatch,
+    first_row: usize,
     header: &ShardHeader,
     model: &str,
     shard: &mut Shard,
@@ -443,19 +482,20 @@ fn read_rows(
     };
     let hash = |array: &FixedSizeBinaryArray, row: usize, name: &str| {
         <[u8; 32]>::try_from(array.value(row))
-            .map_err(|_| not_ours(format!("row {row}: `{name}` is not 32 bytes")))
+            .map_err(|_| not_ours(format!("row {}: `{name}` is not 32 bytes", first_row + row)))
     };
     for row in 0..batch.num_rows() {
+        let at = first_row + row;
         if model_column.value(row) != model {
             return Err(not_ours(format!(
-                "row {row} was made by another model than the file's metadata names"
+                "row {at} was made by another model than the file's metadata names"
             )));
         }
         let root_index = header
             .roots
             .iter()
             .position(|known| known.to_str() == Some(root.value(row)))
-            .ok_or_else(|| not_ours(format!("row {row} names a root the metadata does not list")))?
+            .ok_or_else(|| not_ours(format!("row {at} names a root the metadata does not list")))?
             as u32;
         let rel = rel_path.value(row).to_owned();
         if !error.is_null(row) {
@@ -477,7 +517,7 @@ fn read_rows(
         ];
         if let Some((name, _)) = required.iter().find(|(_, missing)| *missing) {
             return Err(not_ours(format!(
-                "row {row} has neither `{name}` nor `error`"
+                "row {at} has neither `{name}` nor `error`"
             )));
         }
         let start = embedding.value_offset_at(row);
