@@ -40,7 +40,8 @@ unshare --net --pid --fork --kill-child --mount-proc bash -c '
 ray_s=$(echo "$(date +%s.%N) - $start" | bc)
 tasks_s=$("$python" -c 'import json,sys; print(sum(s["wall_seconds"] for s in json.load(open(sys.argv[1]))["shards"]))' "$work/summary.json")
 
-echo "# shards on Ray against one index run — $(grep -m1 'model name' /proc/cpuinfo | cut -d: -f2 | xargs), $(nproc) cores"
+simd=$(grep -m1 '^flags' /proc/cpuinfo | grep -ow 'avx2\|fma\|avx512f\|avx512_vnni\|avx512_bf16' | sort -u | xargs)
+echo "# shards on Ray against one index run — $(grep -m1 'model name' /proc/cpuinfo | cut -d: -f2 | xargs) ($simd), $(nproc) cores"
 echo
 echo "| run | wall s | images/s | ratio |"
 echo "|---|---:|---:|---:|"

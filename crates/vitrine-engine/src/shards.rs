@@ -437,19 +437,24 @@ impl<'a> ShardMerge<'a> {
         if changes.is_empty() {
             return Ok(());
         }
-        let ids = self.store.commit(changes.clone())?;
-        for (upsert, id) in changes.upserts.into_iter().zip(ids) {
-            let key = (upsert.record.root, upsert.record.rel_path.clone());
-            self.stored.insert(key, (id, upsert.record));
+        // What the view needs of the changes (not their embeddings), taken
+        // before the store takes them.
+        let records: Vec<ImageRecord> = changes.upserts.iter().map(|u| u.record.clone()).collect();
+        let cleared = changes.cleared_errors.clone();
+        let errors = changes.errors.clone();
+        let removed: HashSet<ImageId> = changes.removals.iter().copied().collect();
+        let ids = self.store.commit(changes)?;
+        for (record, id) in records.into_iter().zip(ids) {
+            self.stored
+                .insert((record.root, record.rel_path.clone()), (id, record));
         }
-        for key in changes.cleared_errors {
+        for key in cleared {
             self.recorded_errors.remove(&key);
         }
-        for error in changes.errors {
+        for error in errors {
             self.recorded_errors
                 .insert((error.root, error.rel_path), error.reason);
         }
-        let removed: HashSet<ImageId> = changes.removals.into_iter().collect();
         if !removed.is_empty() {
             self.stored.retain(|_, (id, _)| !removed.contains(id));
         }
